@@ -82,6 +82,32 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     return 0
 
 
+def _overrides(pairs: Sequence[str]) -> dict[str, object]:
+    from cohort.definitions import parse_override
+
+    return dict(parse_override(pair) for pair in pairs)
+
+
+def _cmd_episodes(args: argparse.Namespace) -> int:
+    from cohort.episodes import find_episodes
+
+    result = find_episodes(
+        Path(args.source),
+        args.definition or ["consensus-2024"],
+        out=Path(args.out),
+        overrides=_overrides(args.set),
+        codelists=Path(args.codelists) if args.codelists else None,
+        threads=args.threads,
+        memory_limit=args.memory_limit,
+        progress=not args.quiet,
+    )
+    counts = result.episodes.group_by("definition").len().sort("definition")
+    for definition, episodes in counts.iter_rows():
+        print(f"{definition}: {episodes:,} episodes")
+    print(f"episodes written to {Path(args.out).resolve()}")
+    return 0
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     out = Path(args.out)
     started = time.perf_counter()
@@ -139,6 +165,39 @@ def build_parser() -> argparse.ArgumentParser:
         help="persons generated per chunk; bounds peak memory (default 50,000)",
     )
     synth.set_defaults(func=_cmd_synth)
+
+    episodes = sub.add_parser(
+        "episodes",
+        help="find DKA episodes in an extract by one or more guideline definitions",
+        description=(
+            "Find DKA episodes from lab results by published guideline definitions and write "
+            "episodes.parquet, attrition.csv, quarantine.parquet, data_quality.csv, "
+            "agreement.csv and manifest.json under OUT."
+        ),
+    )
+    episodes.add_argument("--source", required=True, help="the extract: a Parquet folder, a CSV folder or a DuckDB file")
+    episodes.add_argument(
+        "--definition",
+        action="append",
+        metavar="NAME",
+        help=(
+            "a bundled definition (ada-2009, consensus-2024, jbds-2023, ispad-2022) or a definition "
+            "file; repeat for several (default consensus-2024)"
+        ),
+    )
+    episodes.add_argument("--out", required=True, help="output folder (new, empty, or an earlier run's)")
+    episodes.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="override a definition value for every definition, e.g. timing.episode_gap_hours=48; repeatable",
+    )
+    episodes.add_argument("--codelists", help="a folder of code-list CSVs replacing the bundled ones")
+    episodes.add_argument("--threads", type=_positive_int, help="DuckDB worker threads (default: one per core)")
+    episodes.add_argument("--memory-limit", help="DuckDB memory limit, e.g. 4GB (default: DuckDB's)")
+    episodes.add_argument("--quiet", action="store_true", help="do not show progress")
+    episodes.set_defaults(func=_cmd_episodes)
 
     demo = sub.add_parser(
         "demo",
