@@ -108,13 +108,89 @@ def _cmd_episodes(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_features(args: argparse.Namespace) -> int:
+    from cohort.features import options_from_pairs, run_features
+
+    tables = run_features(
+        Path(args.episodes),
+        Path(args.source),
+        Path(args.out),
+        options=options_from_pairs(args.set),
+        threads=args.threads,
+        memory_limit=args.memory_limit,
+    )
+    print(f"{tables.episode_features.height:,} episode rows with features written to {Path(args.out).resolve()}")
+    return 0
+
+
+def _cmd_analyse(args: argparse.Namespace) -> int:
+    from cohort.analyse import run_analyses
+
+    summary = run_analyses(Path(args.features), Path(args.out), definition=args.definition)
+    print(f"{len(summary.written)} result tables for {summary.definition} written to {summary.out.resolve()}")
+    for name, reason in summary.skipped.items():
+        print(f"  not run: {name}: {reason}")
+    return 0
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from cohort.report import write_report
+
+    summary = write_report(Path(args.results), Path(args.out), threshold=args.threshold)
+    print(f"report written to {summary.out_file.resolve()}")
+    print(f"tables behind it (after disclosure control) in {summary.tables_dir.resolve()}")
+    for part, reason in summary.skipped:
+        print(f"  not shown: {part}: {reason}")
+    return 0
+
+
+def _cmd_check_disclosure(args: argparse.Namespace) -> int:
+    from cohort.report import check_disclosure
+
+    path = Path(args.path)
+    if not path.exists():
+        msg = f"no file or folder at {path}; give a report, a CSV file or a folder of them"
+        raise InputError(msg)
+    violations = check_disclosure(path, threshold=args.threshold)
+    for violation in violations:
+        print(violation)
+    if violations:
+        sys.stderr.write(f"{PROG}: {len(violations)} cell(s) break the disclosure rule (threshold {args.threshold})\n")
+        return 1
+    print(f"no cell breaks the disclosure rule (threshold {args.threshold}) in {path}")
+    return 0
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
+    from cohort.analyse import run_analyses
+    from cohort.definitions import list_definitions
+    from cohort.episodes import find_episodes
+    from cohort.features import run_features
+    from cohort.report import write_report
+
     out = Path(args.out)
     started = time.perf_counter()
+
+    def lap(label: str) -> None:
+        if not args.quiet:
+            print(f"[{time.perf_counter() - started:6.1f} s] {label}")
+
     summary = _synth(args)
-    print(f"demo extract: {summary.extract_dir}")
-    print(f"ground truth: {summary.truth_dir}")
-    print(f"demo finished in {time.perf_counter() - started:.1f} s; output under {out.resolve()}")
+    lap(f"synthetic extract: {summary.persons:,} persons, {summary.measurement_rows:,} measurement rows")
+    result = find_episodes(summary.extract_dir, list_definitions(), out=out / "episodes", progress=False)
+    counts = result.episodes.group_by("definition").len().sort("definition")
+    lap("episodes: " + ", ".join(f"{name} {count:,}" for name, count in counts.iter_rows()))
+    tables = run_features(out / "episodes", summary.extract_dir, out / "features")
+    lap(f"features: {tables.episode_features.height:,} episode rows")
+    analysed = run_analyses(out / "features", out / "stats", definition=args.definition)
+    lap(f"statistics ({analysed.definition}): {len(analysed.written)} tables, {len(analysed.skipped)} not run")
+    report = write_report(out, out / "report.html")
+    lap("report written")
+    print(f"demo extract:  {summary.extract_dir}")
+    print(f"ground truth:  {summary.truth_dir}")
+    print(f"results:       {out.resolve()}/episodes, features, stats")
+    print(f"report:        {report.out_file.resolve()}")
+    print(f"demo finished in {time.perf_counter() - started:.1f} s")
     return 0
 
 
@@ -199,13 +275,78 @@ def build_parser() -> argparse.ArgumentParser:
     episodes.add_argument("--quiet", action="store_true", help="do not show progress")
     episodes.set_defaults(func=_cmd_episodes)
 
+    features = sub.add_parser(
+        "features",
+        help="derive episode features (timings, infusion closure, standards, recurrence)",
+        description=(
+            "Derive the analysis tables from an episodes folder and its extract: episode_features, "
+            "person_summary, person_time, counting_process, unlinked_infusions, audit_summary and "
+            "data_dictionary, under OUT."
+        ),
+    )
+    features.add_argument("--episodes", required=True, help="the folder `dka-cohort episodes` wrote")
+    features.add_argument("--source", required=True, help="the extract the episodes came from")
+    features.add_argument("--out", required=True, help="output folder")
+    features.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="a feature option, e.g. hypoglycaemia_mmol_l=4.0; repeatable",
+    )
+    features.add_argument("--threads", type=_positive_int, help="DuckDB worker threads (default: one per core)")
+    features.add_argument("--memory-limit", help="DuckDB memory limit, e.g. 4GB (default: DuckDB's)")
+    features.set_defaults(func=_cmd_features)
+
+    analyse = sub.add_parser(
+        "analyse",
+        help="estimate time to resolution, recurrence and rates from feature tables",
+        description=(
+            "Kaplan-Meier, competing risks, Cox models with proportional-hazards checks, recurrent-"
+            "event and logistic models, a recurrence prediction model and incidence rates, for one "
+            "definition; CSV tables under OUT."
+        ),
+    )
+    analyse.add_argument("--features", required=True, help="the folder `dka-cohort features` wrote")
+    analyse.add_argument("--definition", default="consensus-2024", help="which definition's episodes (default consensus-2024)")
+    analyse.add_argument("--out", required=True, help="output folder for the result tables")
+    analyse.set_defaults(func=_cmd_analyse)
+
+    report = sub.add_parser(
+        "report",
+        help="write the self-contained HTML report, with disclosure control",
+        description=(
+            "Write one self-contained HTML file (works offline) from a results folder holding "
+            "episodes/, features/ and stats/, plus the disclosure-controlled CSV tables behind it."
+        ),
+    )
+    report.add_argument("--results", required=True, help="results folder (episodes/, features/, stats/)")
+    report.add_argument("--out", required=True, help="the HTML file to write")
+    report.add_argument("--threshold", type=_positive_int, default=10, help="smallest count shown (default 10)")
+    report.set_defaults(func=_cmd_report)
+
+    check = sub.add_parser(
+        "check-disclosure",
+        help="scan outputs for cells that break the disclosure rule",
+        description="Scan a report, a CSV file or a folder of them; exit 1 if any cell breaks the rule.",
+    )
+    check.add_argument("path", metavar="FILE_OR_DIR", help="what to scan")
+    check.add_argument("--threshold", type=_positive_int, default=10, help="smallest count allowed (default 10)")
+    check.set_defaults(func=_cmd_check_disclosure)
+
     demo = sub.add_parser(
         "demo",
         help="run the whole pipeline on a small synthetic extract",
-        description="Generate a small synthetic extract and run every stage of the pipeline on it.",
+        description=(
+            "Generate a small synthetic extract, find episodes by every bundled definition, derive "
+            "features, run the statistics and write the report, all under OUT."
+        ),
     )
     _add_synth_options(demo, default_persons=5_000)
     demo.add_argument("--out", default="demo-output", help="output folder (default demo-output)")
+    demo.add_argument(
+        "--definition", default="consensus-2024", help="definition analysed by the statistics stage (default consensus-2024)"
+    )
     demo.set_defaults(func=_cmd_demo)
     return parser
 
