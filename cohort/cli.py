@@ -167,6 +167,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from cohort.episodes import find_episodes
     from cohort.features import run_features
     from cohort.report import write_report
+    from cohort.source import open_extract
 
     out = Path(args.out)
     started = time.perf_counter()
@@ -177,11 +178,12 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
     summary = _synth(args)
     lap(f"synthetic extract: {summary.persons:,} persons, {summary.measurement_rows:,} measurement rows")
-    result = find_episodes(summary.extract_dir, list_definitions(), out=out / "episodes", progress=False)
-    counts = result.episodes.group_by("definition").len().sort("definition")
-    lap("episodes: " + ", ".join(f"{name} {count:,}" for name, count in counts.iter_rows()))
-    tables = run_features(out / "episodes", summary.extract_dir, out / "features")
-    lap(f"features: {tables.episode_features.height:,} episode rows")
+    with open_extract(summary.extract_dir) as extract:  # one session: lab events are prepared once
+        result = find_episodes(extract, list_definitions(), out=out / "episodes", progress=False)
+        counts = result.episodes.group_by("definition").len().sort("definition")
+        lap("episodes: " + ", ".join(f"{name} {count:,}" for name, count in counts.iter_rows()))
+        tables = run_features(result.episodes, extract, out / "features")
+        lap(f"features: {tables.episode_features.height:,} episode rows")
     analysed = run_analyses(out / "features", out / "stats", definition=args.definition)
     lap(f"statistics ({analysed.definition}): {len(analysed.written)} tables, {len(analysed.skipped)} not run")
     report = write_report(out, out / "report.html")
