@@ -7,8 +7,8 @@ import numpy as np
 from synthetic import _params as P
 from synthetic._labcodes import CodeTable
 from synthetic._people import (
-    MIN_D, MIN_H, T1, T2, dka_linear_predictor, expand, inside_intervals, make_episodes, make_mimics,
-    make_persons, state,
+    MIN_D, MIN_H, T1, T2, dka_linear_predictor, expand, inside_intervals, lab_jitter, make_episodes,
+    make_mimics, make_persons, reported_acid_base, state,
 )
 from synthetic._vocab import cid
 
@@ -231,16 +231,17 @@ def generate_chunk(rng: np.random.Generator, first_person_id: int, n: int, ids: 
             return np.where(inside, vd_id[e], -1)
 
         # hourly slots from onset to the end of close monitoring
-        end_mon = np.where(np.isnan(ep["res"]), close, np.maximum(close, ep["res"])) + 6 * MIN_H
+        end_mon = np.fmax(np.where(np.isnan(ep["res"]), close, np.maximum(close, ep["res"])), ep["res_doc_latest"]) + 6 * MIN_H
         end_mon = np.minimum(end_mon, np.where(ep["died"], ep["death_t"], dis))
         nh = np.floor((end_mon - ep["onset"]) / MIN_H).astype(np.int64) + 1
         nh = np.maximum(nh, 1)
         e, j = expand(nh)
-        jit = np.where(j > 0, rng.integers(-5, 6, e.size), 0)
-        t = ep["onset"][e] + j * MIN_H + jit
+        # draw times and ketone / gas noise as the course read them (documented resolution)
+        t = ep["onset"][e] + j * MIN_H + lab_jitter(ep["lab_key"][e], j)
         t = np.minimum(t, end_mon[e])
         tau = (t - ins[e]) / MIN_H
         s = state(ep, e, tau)
+        drawn = reported_acid_base(ep, e, j, t)
         vis = visit_at(e, t)
         vdt = vdetail_at(e, t)
         pe_e = p[e]
@@ -260,19 +261,20 @@ def generate_chunk(rng: np.random.Generator, first_person_id: int, n: int, ids: 
         # ketones
         every = np.array([hh["bhb_every_h"] for hh in P.HOSPITALS])[he]
         m = (j % every) == 0
-        b = np.maximum(s["bhb"] * (1 + rng.normal(0, 0.08, e.size)) + rng.normal(0, 0.05, e.size), 0.0)
+        b = drawn["bhb"]
         rows.add(pe_e[m], codes.of("bhb", he[m]), t[m], b[m], vis[m], SRC_EPISODE, he[m], vdt[m])
         # gases and electrolytes every 2-4 h
         gas_every = np.array([hh["gas_every_h"] for hh in P.HOSPITALS])[he]
         m = (j % gas_every) == 0
         ge, gt_, gh, gv, gd, gj = e[m], t[m], he[m], vis[m], vdt[m], j[m]
         gs = {k: v[m] for k, v in s.items()}
+        gdrawn = {k: v[m] for k, v in drawn.items()}
         k_ = gs["potassium"] + rng.normal(0, 0.12, ge.size)
         k_ = np.where(ep["hypok"][ge], np.maximum(k_, 2.3), np.maximum(k_, 3.5))
         na = np.round(gs["sodium"] + rng.normal(0, 1.2, ge.size))
-        hc = np.round(np.maximum(gs["hco3"] + rng.normal(0, 0.8, ge.size), 2))
+        hc = gdrawn["hco3"]
         cl = np.round(gs["chloride"] + rng.normal(0, 1.2, ge.size))
-        ph = gs["ph"] + rng.normal(0, 0.015, ge.size)
+        ph = gdrawn["ph"]
         art = ep["arterial"][ge] & (gj == 0)
         child = ep["age"][ge] < 18
         ph_code = np.where(art, codes.of("ph_arterial", gh),
@@ -380,7 +382,7 @@ def generate_chunk(rng: np.random.Generator, first_person_id: int, n: int, ids: 
         hb = np.where(ep["basal_cat"] < 2, (close - ep["basal_t"]) / MIN_H, np.nan)
         truth = {
             "kind": np.zeros(E, np.int8), "person": p, "hosp": h, "visit": v_first, "visit_ip": v_main,
-            "arrival": arr, "onset": ep["onset"], "res": ep["res"], "discharge": dis,
+            "arrival": arr, "onset": ep["onset"], "res": ep["res"], "res_doc": ep["res_doc"], "discharge": dis,
             "sev": ep["sev"], "g0": ep["g0"], "ph0": ep["ph0"], "hco3": ep["hco3"], "bhb0": ep["bhb0"],
             "eu": ep["eu"], "ins": ins, "ins_end": last_end, "inf_rows": 1 + itr.astype(np.int64),
             "premature": ep["premature"], "basal_before": ep["basal_cat"] == 0,
@@ -442,7 +444,8 @@ def generate_chunk(rng: np.random.Generator, first_person_id: int, n: int, ids: 
         add_cond(p[oi], own_c, np.array([cond_src[c] for c in COND_LABELS])[own[oi]], own[oi], arr[oi], v_m[oi])
         mt = {
             "kind": (kind + 1).astype(np.int8), "person": p, "hosp": h, "visit": v_m, "visit_ip": v_m,
-            "arrival": arr, "onset": arr + mm["onset_off"], "res": np.full(M, np.nan), "discharge": end,
+            "arrival": arr, "onset": arr + mm["onset_off"], "res": np.full(M, np.nan), "res_doc": np.full(M, np.nan),
+            "discharge": end,
             "sev": np.full(M, -1), "g0": mm["g"], "ph0": mm["ph"], "hco3": mm["hco3"], "bhb0": mm["bhb"],
             "eu": np.zeros(M, bool), "ins": np.where(mm["iv_insulin"], mm["ins"], np.nan),
             "ins_end": np.where(mm["iv_insulin"], mm["ins_end"], np.nan), "inf_rows": mm["iv_insulin"].astype(np.int64),

@@ -151,8 +151,13 @@ RESOLUTION = {
 CARE = {
     "delay_lognormal_sigma": 0.5,  # arrival-to-insulin delay: median by hospital, this log-sd
     "closure_before_resolution_share": 0.15,
+    "closure_before_resolution_reference": (
+        "documented resolution: the first draw whose reported ketones < 0.6 mmol/L and venous pH >= 7.30;"
+        " premature closures also precede the physiological resolution and the consensus bicarbonate arm,"
+        " on-time closures also follow the JBDS pH > 7.3 reading"
+    ),
     "premature_closure_at_fraction_of_time_to_resolution": [0.5, 0.9],
-    "closure_after_resolution_hours": [0.25, 4.0],
+    "closure_after_resolution_hours": [0.25, 4.0],  # after the documented resolution
     "basal_before_closure_share": 0.55,
     "basal_after_closure_share": 0.35,
     "basal_before_closure_hours": [0.5, 3.0],

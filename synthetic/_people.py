@@ -17,6 +17,9 @@ YEAR = P.MIN_PER_YEAR
 NONE, T1, T2 = 0, 1, 2
 GROUP_NAMES = ("none", "type1", "type2")
 SEVERITY_NAMES = ("mild", "moderate", "severe")
+# episode rounds per chunk: far more than anyone reaches (a cap at 12 cut off the persons of the
+# highest hazard and biased the recurrence and SGLT2-inhibitor hazard ratios towards zero)
+MAX_ROUNDS = 10_000
 
 
 def expand(counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -113,6 +116,154 @@ def dka_linear_predictor(pe: dict[str, np.ndarray]) -> np.ndarray:
     )
 
 
+# --- laboratory draws of the course: what the clinicians (and an analysis) see ---------------
+# The hourly draws of an episode (slot j at onset + j h, jittered by -5..5 min for j > 0) carry
+# measurement noise that is a fixed function of (episode key, slot, stream), so the course can
+# read the same reported values the extract will hold before the extract is written: closure
+# is planned on documented resolution, which only these reported values reveal.
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+STREAM_JITTER, STREAM_BHB_MULT, STREAM_BHB_ADD, STREAM_PH, STREAM_HCO3 = 0, 1, 2, 3, 4
+NOISE_BHB_MULT, NOISE_BHB_ADD, NOISE_PH, NOISE_HCO3 = 0.08, 0.05, 0.015, 0.8
+# how each hospital's reports round-trip to canonical values (truth/README: recording practice)
+_BHB_FACTOR = np.array([P.BHB_MG_DL_PER_MMOL_L if hh["bhb"][1] == "mg/dL" else 1.0 for hh in P.HOSPITALS])
+# total CO2 (2028-9) reads about 1 mmol/L above bicarbonate, and the gas analyser's venous
+# bicarbonate (14627-4) 1 above serum: the highest bicarbonate an analysis can see at a gas draw
+_HCO3_HIGHEST_PLUS = np.array([1.0 if (hh["bicarbonate"][0] == "2028-9" or hh["bicarbonate_gas"]) else 0.0
+                               for hh in P.HOSPITALS])
+BHB_EVERY_H = np.array([hh["bhb_every_h"] for hh in P.HOSPITALS])
+GAS_EVERY_H = np.array([hh["gas_every_h"] for hh in P.HOSPITALS])
+
+
+def _mix64(x: np.ndarray) -> np.ndarray:
+    """SplitMix64 finaliser (Steele GL, Lea D, Flood CH. Fast splittable pseudorandom number
+    generators. OOPSLA 2014): a bijective 64-bit mix, vectorised."""
+    with np.errstate(over="ignore"):
+        z = x + _GOLDEN
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+
+def _uniform(key: np.ndarray, j: np.ndarray, stream: int) -> np.ndarray:
+    """Uniform (0, 1) as a fixed function of (episode key, slot, stream)."""
+    with np.errstate(over="ignore"):
+        x = (np.asarray(key, dtype=np.uint64) ^ _mix64(np.asarray(j, dtype=np.uint64) * np.uint64(8) + np.uint64(stream)))
+    return ((_mix64(x) >> np.uint64(11)).astype(np.float64) + 0.5) / 9007199254740992.0
+
+
+def lab_normal(key: np.ndarray, j: np.ndarray, stream: int) -> np.ndarray:
+    """Standard normal noise of slot ``j`` of the episodes with lab keys ``key`` (Box-Muller).
+
+    Examples
+    --------
+    >>> z = lab_normal(np.full(20000, 12345, np.uint64), np.arange(20000), STREAM_PH)
+    >>> bool(abs(z.mean()) < 0.05 and abs(z.std() - 1) < 0.05)
+    True
+    """
+    u1 = _uniform(key, j, 2 * stream + 16)
+    u2 = _uniform(key, j, 2 * stream + 17)
+    return np.sqrt(-2.0 * np.log(u1)) * np.cos(2.0 * np.pi * u2)
+
+
+def lab_jitter(key: np.ndarray, j: np.ndarray) -> np.ndarray:
+    """Minutes (-5..5) a slot's draw lies off the hour; 0 for the onset draw (j = 0)."""
+    jit = np.floor(_uniform(key, j, STREAM_JITTER) * 11).astype(np.int64) - 5
+    return np.where(np.asarray(j) > 0, jit, 0)
+
+
+def reported_acid_base(c: dict[str, np.ndarray], e: np.ndarray, j: np.ndarray,
+                       t: np.ndarray) -> dict[str, np.ndarray]:
+    """The values an episode's draw at slot ``j`` (time ``t``, minutes) reports, in canonical units.
+
+    ``bhb`` and ``ph`` are the drawn values (the extract rounds them: ketones to 0.1 in the
+    hospital's unit, pH to 0.01), ``hco3`` the serum bicarbonate (whole mmol/L, before any total
+    CO2 offset); ``*_reported`` are the rounded canonical values an analysis reads.
+    """
+    key = c["lab_key"][e]
+    s = acid_base(c, e, (t - c["ins"][e]) / MIN_H)
+    bhb = np.maximum(s["bhb"] * (1 + NOISE_BHB_MULT * lab_normal(key, j, STREAM_BHB_MULT))
+                     + NOISE_BHB_ADD * lab_normal(key, j, STREAM_BHB_ADD), 0.0)
+    ph = s["ph"] + NOISE_PH * lab_normal(key, j, STREAM_PH)
+    hco3 = np.round(np.maximum(s["hco3"] + NOISE_HCO3 * lab_normal(key, j, STREAM_HCO3), 2))
+    f = _BHB_FACTOR[c["hosp"][e]]
+    return {"bhb": bhb, "ph": ph, "hco3": hco3,
+            "bhb_reported": np.round(bhb * f * 10) / 10 / f, "ph_reported": np.round(ph * 100) / 100}
+
+
+def documented_resolution(c: dict[str, np.ndarray], idx: np.ndarray,
+                          horizon_h: np.ndarray) -> dict[str, np.ndarray]:
+    """First draws (minutes) at which the reported values of episodes ``idx`` meet resolution.
+
+    At each hourly slot after onset the latest reported ketone and the latest gas (pH,
+    bicarbonate) are read, as a clinician reads the chart. Three readings:
+
+    * ``standard``: ketones < 0.6 mmol/L and venous pH >= 7.30 (the ketone-and-pH criteria of
+      the 2024 consensus report, Umpierrez GE et al., Diabetes Care 2024;47:1257-1275, which
+      JBDS 2023 shares with pH > 7.3; the same as the truth's physiological resolution);
+    * ``earliest``: ketones < 0.6 and (pH >= 7.30 or the highest bicarbonate of the gas >= 18),
+      the earliest any of those readings documents resolution (the consensus bicarbonate arm);
+    * ``latest``: ketones < 0.6 and pH > 7.30 (JBDS 2023), the latest of them.
+
+    NaN where no slot within ``horizon_h`` hours of insulin start meets the reading.
+    """
+    out = {name: np.full(idx.size, np.nan) for name in ("standard", "earliest", "latest")}
+    if idx.size == 0:
+        return out
+    first_j = np.floor((c["ins"][idx] - c["onset"][idx]) / MIN_H).astype(np.int64)
+    n_j = np.maximum(first_j + np.ceil(horizon_h).astype(np.int64) + 2, 2)
+    for part in np.array_split(np.arange(idx.size), max(1, int(n_j.sum()) // 400_000 + 1)):
+        if part.size == 0:
+            continue
+        ee = idx[part]
+        width = int(n_j[part].max())
+        e2 = np.repeat(ee, width)
+        j2 = np.tile(np.arange(width), ee.size)
+        t2 = c["onset"][e2] + j2 * MIN_H + lab_jitter(c["lab_key"][e2], j2)
+        r = reported_acid_base(c, e2, j2, t2)
+        h2 = c["hosp"][e2]
+        shape = (ee.size, width)
+        jj = j2.reshape(shape)
+        bhb_drawn = ((j2 % BHB_EVERY_H[h2]) == 0).reshape(shape) & (jj > 0)
+        gas_drawn = ((j2 % GAS_EVERY_H[h2]) == 0).reshape(shape) & (jj > 0)
+        inside = jj < n_j[part][:, None]
+
+        def carried(value: np.ndarray, drawn: np.ndarray) -> np.ndarray:
+            # latest value drawn after onset at or before each slot (NaN before the first)
+            last = np.maximum.accumulate(np.where(drawn, jj, -1), axis=1)
+            rows = np.arange(ee.size)[:, None]
+            v = value.reshape(shape)[rows, np.maximum(last, 0)]
+            return np.where(last >= 0, v, np.nan)
+
+        bhb = carried(r["bhb_reported"], bhb_drawn)
+        ph = carried(r["ph_reported"], gas_drawn)
+        hco3 = carried(r["hco3"] + _HCO3_HIGHEST_PLUS[h2], gas_drawn)
+        ketones = bhb < 0.6
+        tt = t2.reshape(shape)
+        for name, ok in (("standard", ketones & (ph >= 7.3)),
+                         ("earliest", ketones & ((ph >= 7.3) | (hco3 >= 18))),
+                         ("latest", ketones & (ph > 7.3))):
+            ok &= inside
+            first = np.argmax(ok, axis=1)
+            found = ok[np.arange(ee.size), first]
+            out[name][part] = np.where(found, tt[np.arange(ee.size), first], np.nan)
+    return out
+
+
+def _documented(c: dict[str, np.ndarray], idx: np.ndarray, t_res_h: np.ndarray, k: int) -> dict[str, np.ndarray]:
+    """:func:`documented_resolution` for episodes ``idx`` of ``k``, widening the horizon for those
+    not yet documented (full-length arrays, NaN outside ``idx`` or when never documented)."""
+    out = {name: np.full(k, np.nan) for name in ("standard", "earliest", "latest")}
+    todo = idx
+    for extra_h in (12.0, 48.0, 240.0):
+        if todo.size == 0:
+            break
+        got = documented_resolution(c, todo, np.asarray(t_res_h)[todo] + extra_h)
+        for name in out:
+            out[name][todo] = np.where(np.isnan(out[name][todo]), got[name], out[name][todo])
+        todo = todo[np.isnan(out["latest"][todo]) | np.isnan(out["earliest"][todo]) | np.isnan(out["standard"][todo])]
+    return out
+
+
 def _u(rng, lo, hi, k):
     return rng.uniform(lo, hi, k)
 
@@ -128,11 +279,17 @@ def dka_course(rng: np.random.Generator, p: np.ndarray, arrival: np.ndarray,
     sev = rng.choice(3, size=k, p=[P.SEVERITY_SHARES[s] for s in SEVERITY_NAMES])
     sg = pe["sglt2"][p]
     eu = sg & (rng.random(k) < care["sglt2i_euglycaemic_share"])
-    lo_ph, hi_ph = np.array([7.251, 7.00, 6.85]), np.array([7.295, 7.245, 6.99])
+    # onset values inside the 2024 consensus bands of the class (Umpierrez GE et al., Diabetes
+    # Care 2024;47:1257-1275; CLINICAL.md): mild pH > 7.25 to < 7.30, bicarbonate 15 to < 18;
+    # moderate pH 7.00-7.25, bicarbonate 10 to < 15; severe pH < 7.00, bicarbonate < 10;
+    # ketones 3-6 mmol/L in mild and moderate, > 6 in severe. Each range keeps about two
+    # measurement-noise SDs (pH 0.015, bicarbonate 0.8, ketones 8%) inside the band edges that
+    # would regrade the episode, so the drawn labs grade it in its own class
+    lo_ph, hi_ph = np.array([7.27, 7.04, 6.85]), np.array([7.295, 7.22, 6.97])
     ph0 = rng.uniform(lo_ph[sev], hi_ph[sev])
-    lo_b, hi_b = np.array([15.2, 10.2, 4.0]), np.array([17.8, 14.8, 9.8])
+    lo_b, hi_b = np.array([16.0, 11.0, 4.0]), np.array([17.6, 14.0, 9.0])
     hco3 = rng.uniform(lo_b[sev], hi_b[sev])
-    lo_k, hi_k = np.array([3.2, 3.5, 6.1]), np.array([5.5, 6.5, 9.0])
+    lo_k, hi_k = np.array([3.2, 3.5, 6.6]), np.array([5.0, 5.2, 9.0])
     bhb0 = rng.uniform(lo_k[sev], hi_k[sev])
     g0 = np.where(eu, _u(rng, 7.0, 10.9, k), np.clip(np.exp(rng.normal(np.log(27), 0.3, k)), 12, 60))
     k0 = np.clip(rng.normal(5.0, 0.6, k), 3.6, 7.0)
@@ -157,11 +314,28 @@ def dka_course(rng: np.random.Generator, p: np.ndarray, arrival: np.ndarray,
     res_plan = ins + t_res * MIN_H
     died = rng.random(k) < np.array([care["death_share"][s] for s in SEVERITY_NAMES])[sev]
     death_t = np.round(ins + np.maximum(_u(rng, 0.2, 0.9, k) * t_res * MIN_H, 30))
+    # kinetics (per hour, from insulin start): the binding criterion resolves exactly at t_res
+    ket_binds = rng.random(k) < 0.6
+    frac = _u(rng, 0.5, 0.95, k)
+    tau_k = np.where(ket_binds, t_res, t_res * frac)
+    tau_a = np.where(ket_binds, t_res * frac, t_res)
+    kk = np.log((bhb0 - 0.2) / 0.4) / tau_k
+    ka = np.log((7.37 - ph0) / 0.07) / tau_a
+    # documented resolution: the first draw whose reported values meet resolution (the labs
+    # reveal the physiological resolution only at a later draw); clinicians close on it
+    lab_key = rng.integers(0, 2**63 - 1, k, dtype=np.int64).astype(np.uint64)
+    course = {"hosp": h, "onset": onset, "ins": ins, "bhb0": bhb0, "ph0": ph0, "hco3": hco3,
+              "kk": kk, "ka": ka, "lab_key": lab_key}
+    doc = _documented(course, np.nonzero(~died)[0], t_res, k)
     premature = ~died & (rng.random(k) < care["closure_before_resolution_share"])
     lo_f, hi_f = care["premature_closure_at_fraction_of_time_to_resolution"]
     lo_a, hi_a = care["closure_after_resolution_hours"]
-    close = np.where(premature, ins + t_res * MIN_H * _u(rng, lo_f, hi_f, k),
-                     res_plan + _u(rng, lo_a, hi_a, k) * MIN_H)
+    # premature: before any reading of the labs (and the body) shows resolution; on time: after
+    # every reading does (JBDS pH > 7.3 is the last), so the flag is the same under each
+    before = np.fmin(np.fmin(doc["earliest"], doc["standard"]), res_plan)
+    after = np.fmax(np.fmax(doc["latest"], doc["standard"]), res_plan)  # fmin / fmax skip NaN
+    close = np.where(premature, ins + (before - ins) * _u(rng, lo_f, hi_f, k),
+                     after + _u(rng, lo_a, hi_a, k) * MIN_H)
     close = np.round(np.where(died, death_t, close))
     ub = rng.random(k)
     basal_cat = np.where(ub < care["basal_before_closure_share"], 0,
@@ -177,13 +351,6 @@ def dka_course(rng: np.random.Generator, p: np.ndarray, arrival: np.ndarray,
     stop1 = np.round(ins + _u(rng, 0.2, 0.7, k) * (close - ins))
     restart = np.round(stop1 + _u(rng, 15, 90, k))
     interrupt &= restart < close - 15
-    # kinetics (per hour, from insulin start): the binding criterion resolves exactly at t_res
-    ket_binds = rng.random(k) < 0.6
-    frac = _u(rng, 0.5, 0.95, k)
-    tau_k = np.where(ket_binds, t_res, t_res * frac)
-    tau_a = np.where(ket_binds, t_res * frac, t_res)
-    kk = np.log((bhb0 - 0.2) / 0.4) / tau_k
-    ka = np.log((7.37 - ph0) / 0.07) / tau_a
     rb_rise = _u(rng, 0.8, 2.5, k)
     rb_hours = _u(rng, 2, 5, k)
     gt = np.where(eu, _u(rng, 6.0, 8.5, k), _u(rng, 6.5, 10.0, k))
@@ -202,13 +369,20 @@ def dka_course(rng: np.random.Generator, p: np.ndarray, arrival: np.ndarray,
         "stop1": stop1, "restart": restart, "kk": kk, "ka": ka, "rb_rise": rb_rise,
         "rb_hours": rb_hours, "gt": gt, "kg": kg, "tau_dex": tau_dex, "hypo": hypo,
         "tau_hypo": tau_hypo, "hypok": hypok, "kmin": kmin, "prior": np.full(k, prior),
-        "lp_res": lp,
+        "lp_res": lp, "lab_key": lab_key,
     }
     res = np.where(died, np.nan, res_plan)
     if rebound.any():
         res = np.where(rebound, _rebound_resolution(course), res)
+        # the rebound delays what the labs document too (the draws up to closure are unchanged)
+        ri = np.nonzero(rebound)[0]
+        doc_rb = _documented(course, ri, (np.fmax(res, close) - ins) / MIN_H, k)
+        for name in doc:
+            doc[name][ri] = doc_rb[name][ri]
     course["res"] = np.round(res)
-    end_care = np.where(died, death_t, np.maximum(close, course["res"]))
+    course["res_doc"] = doc["standard"]
+    course["res_doc_latest"] = doc["latest"]
+    end_care = np.where(died, death_t, np.fmax(np.maximum(close, course["res"]), doc["latest"]))
     discharge = np.round(np.where(died, death_t, end_care + _u(rng, 12, 60, k) * MIN_H))
     course["discharge"] = discharge
     icu = rng.random(k) < np.array([care["icu_share"][s] for s in SEVERITY_NAMES])[sev]
@@ -241,13 +415,17 @@ def dka_course(rng: np.random.Generator, p: np.ndarray, arrival: np.ndarray,
     return course
 
 
-def state(c: dict[str, np.ndarray], e: np.ndarray, tau: np.ndarray) -> dict[str, np.ndarray]:
-    """True (noise-free) physiology of episodes ``e`` at ``tau`` hours from insulin start."""
+def acid_base(c: dict[str, np.ndarray], e: np.ndarray, tau: np.ndarray) -> dict[str, np.ndarray]:
+    """True ketones, venous pH and bicarbonate of episodes ``e`` at ``tau`` hours from insulin start.
+
+    Before the closure is planned (no ``rebound`` in ``c``) this is the course on the infusion;
+    afterwards a rebound after premature closure is included.
+    """
     tp = np.maximum(tau, 0.0)
     bhb0, kk, ka, ph0 = c["bhb0"][e], c["kk"][e], c["ka"][e], c["ph0"][e]
     bhb = 0.2 + (bhb0 - 0.2) * np.exp(-kk * tp)
     acid = np.exp(-ka * tp)
-    rb = c["rebound"][e]
+    rb = c["rebound"][e] if "rebound" in c else np.zeros(np.shape(e), bool)
     if rb.any():
         tc = (c["close"][e] - c["ins"][e]) / MIN_H
         up = c["rb_hours"][e]
@@ -264,6 +442,14 @@ def state(c: dict[str, np.ndarray], e: np.ndarray, tau: np.ndarray) -> dict[str,
     ph = 7.37 - (7.37 - ph0) * acid
     # bicarbonate lags pH (hyperchloraemia on recovery): it recovers as acid ** 0.6
     hco3 = 24.0 - (24.0 - c["hco3"][e]) * acid ** 0.6
+    return {"bhb": bhb, "ph": ph, "hco3": hco3}
+
+
+def state(c: dict[str, np.ndarray], e: np.ndarray, tau: np.ndarray) -> dict[str, np.ndarray]:
+    """True (noise-free) physiology of episodes ``e`` at ``tau`` hours from insulin start."""
+    tp = np.maximum(tau, 0.0)
+    ab = acid_base(c, e, tau)
+    bhb, ph, hco3 = ab["bhb"], ab["ph"], ab["hco3"]
     g0, gt = c["g0"][e], c["gt"][e]
     glucose = gt + (g0 - gt) * np.exp(-c["kg"][e] * tp)
     k0, kmin = c["k0"][e], c["kmin"][e]
@@ -290,7 +476,7 @@ def _rebound_resolution(c: dict[str, np.ndarray]) -> np.ndarray:
             continue
         ee = np.repeat(chunk, grid.size)
         tt = np.tile(grid, chunk.size)
-        s = state(c, ee, tt)
+        s = acid_base(c, ee, tt)
         ok = ((s["bhb"] < 0.6) & (s["ph"] >= 7.3)).reshape(chunk.size, grid.size)
         tc = ((c["close"][chunk] - c["ins"][chunk]) / MIN_H)[:, None]
         ok &= grid[None, :] > tc  # resolution comes after the (premature) closure
@@ -314,7 +500,7 @@ def make_episodes(rng: np.random.Generator, pe: dict[str, np.ndarray]) -> dict[s
     death_ep = np.full(n, np.nan)
     rounds = []
     b_prior = hz["log_hr"]["per_prior_episode_capped_3"]
-    for r in range(12):
+    for r in range(MAX_ROUNDS):  # until no one is at risk (a person is never cut off early)
         lam = base * np.exp(lp + b_prior * min(r, 3)) / YEAR
         wait = rng.exponential(size=n) / np.where(lam > 0, lam, 1.0)
         arr = np.floor(t_cur + wait)

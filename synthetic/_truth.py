@@ -71,15 +71,37 @@ Times are naive local timestamps, like the CDM's. Concentrations are in canonica
   beta-hydroxybutyrate is below 0.6 mmol/L **and** the true venous pH is at or above 7.30. This
   follows the JBDS 2023 and 2024 consensus ketone-and-pH reading (CLINICAL.md); it is not any one
   guideline's full rule (no glucose, no bicarbonate criterion). Null when the person died first.
-  Laboratory results are noisy draws from the true course, so a lab-based definition will place
-  resolution at the first draw after this time, within one sampling interval (1-4 h by hospital).
-- **Severity** (`severity`) from the true venous pH and bicarbonate at onset, drawn within bands
-  that agree with the ADA 2009 / 2024 consensus table: mild pH 7.25-7.30 and bicarbonate 15-18;
-  moderate pH 7.00-7.24 and bicarbonate 10-15; severe pH < 7.00 and bicarbonate < 10 mmol/L.
-  Beta-hydroxybutyrate at onset is always >= 3.2 mmol/L for true episodes.
+- **Documented resolution** (`documented_resolution_datetime`): the first scheduled draw after
+  onset at which the *reported* values (noisy, rounded as the extract holds them) meet
+  ketones < 0.6 mmol/L and venous pH >= 7.30, reading the latest ketone and the latest gas at
+  each hourly slot. These are the ketone-and-pH criteria of the 2024 consensus report
+  (Umpierrez GE et al., Diabetes Care 2024;47:1257-1275), which JBDS 2023 shares (pH > 7.3) and
+  which the physiological resolution above uses; bicarbonate is left out, as JBDS leaves it out,
+  because hyperchloraemia keeps it low after ketosis clears. The labs reveal the physiological
+  resolution only at a later draw (median about 1 h later; noise can also document it earlier).
+  Null when the person died first.
+- **Severity** (`severity`) from the true venous pH, bicarbonate and beta-hydroxybutyrate at
+  onset, drawn inside the 2024 consensus bands of the class (which agree with the ADA 2009 table
+  for pH and bicarbonate): mild pH 7.27-7.295, bicarbonate 16-17.6, ketones 3.2-5.0; moderate pH
+  7.04-7.22, bicarbonate 11-14, ketones 3.5-5.2; severe pH 6.85-6.97, bicarbonate 4-9, ketones
+  6.6-9.0 mmol/L. Each range stays about two measurement-noise SDs inside the band edges that
+  would regrade the episode (consensus: severe if pH < 7.00, bicarbonate < 10 or ketones > 6;
+  moderate if pH <= 7.25 or bicarbonate < 15), so a definition grading from the onset draw
+  finds the planted class in about 98% of episodes. Beta-hydroxybutyrate at onset is always
+  >= 3.2 mmol/L for true episodes.
 - **Premature closure** (`is_premature_closure`): the (last) IV insulin infusion ends before the
-  true resolution. Planted in `care.closure_before_resolution_share` of the episodes that did not
-  end in death.
+  *documented* resolution, as clinicians close the infusion on what the labs show. Planted in
+  `care.closure_before_resolution_share` of the episodes that did not end in death. A premature
+  closure falls at `care.premature_closure_at_fraction_of_time_to_resolution` of the way from
+  insulin start to the earliest of: the physiological resolution and the first draw at which any
+  published reading of the labs documents resolution (including the consensus "or bicarbonate
+  >= 18" arm). An on-time closure falls `care.closure_after_resolution_hours` after the latest of:
+  the physiological resolution, the documented resolution and the first draw meeting JBDS's
+  stricter pH > 7.3. So the flag is the same whether an analysis reads resolution by the 2024
+  consensus or by JBDS 2023. Measurement noise and rounding (bhb to 0.1 in the hospital's unit,
+  pH to 0.01, bicarbonate to whole mmol/L) are the same in the truth's reading and in the extract;
+  recording faults (a pH decimal slip, a date-only row) on the deciding draw can still move an
+  analysis's resolution to the next draw.
 - **Rebound** (`has_rebound`): after a premature closure, ketones rise again (by 0.8-2.5 mmol/L over
   2-5 h) before falling under subcutaneous insulin; this delays resolution. The infusion is not
   restarted, so the last infusion end stays before resolution.
@@ -95,7 +117,8 @@ Times are naive local timestamps, like the CDM's. Concentrations are in canonica
   above 64, SGLT2 inhibitor, female) plus `per_prior_episode_capped_3` times the number of earlier
   episodes in the extract (at most 3). Episodes are drawn in rounds: a waiting time from the
   current hazard, starting at observation start and then 14 days after each discharge (the person
-  is not at risk during a stay and the 14 days after it). `persons.parquet:
+  is not at risk during a stay and the 14 days after it), with no cap on the number of rounds.
+  `persons.parquet:
   dka_log_hazard_without_prior` is the linear predictor of each person.
 - **Time to resolution** (`effects.json: resolution`): hours from infusion start to planned
   resolution follow a Weibull proportional-hazards model (shape 2.2, baseline median 10 h for a
@@ -154,6 +177,7 @@ formulary (vocabulary `HVH Formulary`, codes `HVH-...`) linked to their ingredie
 | `arrival_datetime` | start of the arrival visit |
 | `onset_datetime` | true onset: time of the first diagnostic blood draw |
 | `resolution_datetime` | true physiological resolution (definition above); null if not resolved |
+| `documented_resolution_datetime` | first draw whose reported values meet resolution (definition above); null if not resolved |
 | `discharge_datetime` | end of the stay (death time for in-hospital deaths) |
 | `severity` | `mild`, `moderate`, `severe` (DKA only) |
 | `onset_glucose_mmol_l` | true glucose at onset |
@@ -167,7 +191,8 @@ formulary (vocabulary `HVH Formulary`, codes `HVH-...`) linked to their ingredie
 | `hours_arrival_to_insulin` | arrival to first infusion start, hours |
 | `hours_insulin_to_resolution` | infusion start to true resolution, hours |
 | `hours_onset_to_resolution` | onset to true resolution, hours |
-| `is_premature_closure` | infusion ended before true resolution |
+| `hours_onset_to_documented_resolution` | onset to documented resolution, hours (the time scale of a lab-based definition) |
+| `is_premature_closure` | infusion ended before the documented resolution |
 | `has_basal_before_closure` | SC basal insulin given before the infusion ended |
 | `hours_basal_before_closure` | infusion end minus SC basal dose time, hours (positive when basal came first, negative when after; null if none) |
 | `has_hypoglycaemia` | recorded glucose < 4.0 mmol/L on the infusion |
