@@ -161,6 +161,15 @@ def _cmd_check_disclosure(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_sql(args: argparse.Namespace) -> int:
+    from cohort.definitions import load_definition
+    from cohort.engines import sql_command
+
+    definition = load_definition(args.definition, overrides=_overrides(args.set))
+    sys.stdout.write(sql_command(args.dialect, definition, Path(args.out) if args.out else None).rstrip("\n") + "\n")
+    return 0
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from cohort.analyse import run_analyses
     from cohort.definitions import list_definitions
@@ -335,6 +344,25 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("path", metavar="FILE_OR_DIR", help="what to scan")
     check.add_argument("--threshold", type=_positive_int, default=10, help="smallest count allowed (default 10)")
     check.set_defaults(func=_cmd_check_disclosure)
+
+    sql = sub.add_parser(
+        "sql",
+        help="print the recipes rendered for another SQL engine",
+        description=(
+            "Render every recipe with one definition's values for a SQL engine, through sqlglot; a "
+            "construct the engine cannot run is refused with the recipe named, never passed on."
+        ),
+    )
+    sql.add_argument(
+        "--dialect",
+        required=True,
+        choices=["duckdb", "postgres", "spark", "bigquery", "snowflake", "tsql"],
+        help="the target engine",
+    )
+    sql.add_argument("--definition", default="consensus-2024", help="definition whose values fill the recipes")
+    sql.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="override a definition value; repeatable")
+    sql.add_argument("--out", help="write one .sql file per recipe into this folder instead of printing")
+    sql.set_defaults(func=_cmd_sql)
 
     demo = sub.add_parser(
         "demo",
