@@ -6,7 +6,10 @@ rate analyses of :mod:`cohort.stats`, and writes each result as a CSV under ``ou
 the data cannot support (too few events, a constant covariate, perfect separation) is not fatal:
 it is listed in ``analyses.csv`` with the reason, and the others still run.
 
-The CSVs hold unsuppressed counts; they are working results for the secure environment. The
+Whole curves (one row per event time: Kaplan-Meier of resolution, cumulative incidence of
+resolution with death and discharge competing, cumulative incidence of first recurrence with
+death competing) go to ``out/curves/``; summary tables to ``out``. The CSVs hold unsuppressed
+counts; they are working results for the secure environment. The
 report (``dka-cohort report``) applies disclosure control to everything it shows and exports.
 """
 
@@ -172,7 +175,10 @@ def run_analyses(
     summary = AnalysisSummary(out=target, definition=definition)
 
     def save(name: str, frame: pl.DataFrame) -> None:
-        path = target / f"{name}.csv"
+        # whole curves (one row per event time) go to curves/, summary tables beside it
+        folder = target / "curves" if name.startswith("curve_") else target
+        folder.mkdir(parents=True, exist_ok=True)
+        path = folder / f"{name.removeprefix('curve_')}.csv"
         frame.with_columns(pl.lit(definition).alias("definition")).write_csv(path)
         summary.written[name] = path
 
@@ -192,6 +198,7 @@ def run_analyses(
             resolution.filter(pl.col("severity").is_not_null()), group_cols="severity", at_risk_times=AT_RISK_HOURS
         )
         return {
+            "curve_resolution_kaplan_meier": pl.concat([overall.curve, by_severity.curve], how="diagonal_relaxed"),
             "resolution_median_hours": pl.concat([overall.medians, by_severity.medians], how="diagonal_relaxed"),
             "resolution_at_risk": pl.concat([overall.at_risk, by_severity.at_risk], how="diagonal_relaxed"),
             "resolution_logrank_by_severity": stats.logrank_test(
@@ -207,7 +214,8 @@ def run_analyses(
         }
 
     def competing() -> dict[str, pl.DataFrame]:
-        return {"resolution_cumulative_incidence": _cif_at(stats.cumulative_incidence(resolution), CIF_HOURS)}
+        cif = stats.cumulative_incidence(resolution)
+        return {"curve_resolution_cumulative_incidence": cif, "resolution_cumulative_incidence": _cif_at(cif, CIF_HOURS)}
 
     def cause_specific() -> dict[str, pl.DataFrame]:
         data = resolution.filter(pl.all_horizontal([pl.col(name).is_not_null() for name in covariates]))
@@ -240,6 +248,7 @@ def run_analyses(
     def first_recurrence() -> dict[str, pl.DataFrame]:
         result = stats.time_to_first_recurrence(with_death, death_col="died_in_follow_up")
         return {
+            "curve_recurrence_cumulative_incidence": result.cumulative_incidence,
             "recurrence_first_at_risk": result.kaplan_meier.at_risk,
             "recurrence_first_median_days": result.kaplan_meier.medians,
         }
