@@ -1,0 +1,111 @@
+"""Speed and memory of the episodes step, against a bare scan of the measurement columns it reads.
+
+For each definition (and all four together) a fresh Python process runs
+:func:`cohort.episodes.find_episodes` on the extract with DuckDB ``threads`` and ``memory_limit``
+set; the parent reads the child's wall time (printed by the child) and its peak resident set size
+(``os.wait4`` rusage, ``ru_maxrss``). The bare scan reads the measurement columns the pipeline
+reads (``cohort._cdm.used_columns("measurement")``) once with the same settings, aggregating each
+so nothing is skipped; the ratio step / scan is printed.
+
+Targets (issue 3): on the 1,000,000-person extract, 60 s and 4 GB on 2 cores, and within 3 times
+the bare scan.
+
+Usage::
+
+    python benchmarks/bench_episodes.py --extract DIR/extract [--threads 2] [--memory-limit 4GB]
+        [--definition consensus-2024 ...] [--no-all]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Sequence
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+DEFINITIONS = ("consensus-2024", "ada-2009", "jbds-2023", "ispad-2022")
+
+_CHILD = r"""
+import json, sys, time
+sys.path.insert(0, {root!r})
+from cohort.episodes import find_episodes
+started = time.perf_counter()
+result = find_episodes({extract!r}, {definitions!r}, threads={threads!r}, memory_limit={memory!r})
+seconds = time.perf_counter() - started
+print(json.dumps({{"seconds": seconds, "episodes": result.episodes.height, "steps": result.manifest["seconds"]}}))
+"""
+
+_SCAN = r"""
+import json, sys, time
+sys.path.insert(0, {root!r})
+from cohort.source import open_extract
+from cohort._cdm import used_columns
+with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}) as extract:
+    extract.con.execute("set enable_progress_bar = false")
+    columns = [column.name for column in used_columns("measurement")]
+    aggregates = ", ".join(f"sum(hash({{name}}))" for name in columns)
+    started = time.perf_counter()
+    extract.con.execute(f"select {{aggregates}} from measurement").fetchall()
+    seconds = time.perf_counter() - started
+    rows = extract.row_count("measurement")
+print(json.dumps({{"seconds": seconds, "rows": rows, "columns": columns}}))
+"""
+
+
+def _run(code: str) -> tuple[dict, float]:
+    """Run ``code`` in a fresh interpreter; return its JSON output and peak RSS in GiB."""
+    with tempfile.TemporaryFile("w+") as stdout, tempfile.TemporaryFile("w+") as stderr:
+        process = subprocess.Popen([sys.executable, "-c", code], stdout=stdout, stderr=stderr, text=True)
+        _, status, usage = os.wait4(process.pid, 0)
+        stdout.seek(0)
+        stderr.seek(0)
+        out, err = stdout.read(), stderr.read()
+    process.returncode = os.waitstatus_to_exitcode(status)
+    if process.returncode != 0:
+        raise SystemExit(f"child failed ({process.returncode}):\n{err[-4000:]}")
+    peak_gib = usage.ru_maxrss * 1024 / 2**30  # Linux reports KiB
+    lines = [line for line in out.splitlines() if line.startswith("{")]
+    return json.loads(lines[-1]), peak_gib
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--extract", type=Path, required=True, help="the extract folder")
+    parser.add_argument("--threads", type=int, default=2)
+    parser.add_argument("--memory-limit", default="4GB")
+    parser.add_argument("--definition", action="append", dest="definitions",
+                        help="definition to time alone (repeatable; default all four)")
+    parser.add_argument("--no-all", action="store_true", help="skip the run with all definitions together")
+    args = parser.parse_args(argv)
+    extract = str(args.extract.resolve())
+    settings = {"root": str(ROOT), "extract": extract, "threads": args.threads, "memory": args.memory_limit}
+
+    scan, scan_rss = _run(_SCAN.format(**settings))
+    print(f"extract {extract}: {scan['rows']:,} measurement rows; threads={args.threads}, "
+          f"memory_limit={args.memory_limit}")
+    print(f"bare scan of measurement ({', '.join(scan['columns'])}): {scan['seconds']:.2f} s, "
+          f"peak RSS {scan_rss:.2f} GiB")
+    runs = [[name] for name in (args.definitions or DEFINITIONS)]
+    if not args.no_all:
+        runs.append(list(DEFINITIONS))
+    print(f"{'definitions':<58}{'seconds':>9}{'peak GiB':>10}{'x scan':>8}{'episodes':>10}")
+    for names in runs:
+        started = time.perf_counter()
+        found, rss = _run(_CHILD.format(definitions=names, **settings))
+        _ = time.perf_counter() - started
+        label = ", ".join(names)
+        print(f"{label:<58}{found['seconds']:>9.2f}{rss:>10.2f}{found['seconds'] / scan['seconds']:>8.1f}"
+              f"{found['episodes']:>10,}")
+        steps = ", ".join(f"{key} {value:.1f}" for key, value in found["steps"].items() if value >= 0.05)
+        print(f"    steps (s): {steps}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

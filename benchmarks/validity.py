@@ -1,0 +1,167 @@
+"""Validity of the lab-based definitions (and the code-based finder) against the synthetic truth.
+
+For each definition: sensitivity and positive predictive value of episode detection, and the
+median absolute error of onset and resolution times, against ``OUT/truth/episodes.parquet``
+written by ``synthetic.generate_extract`` beside the extract.
+
+Matching rule (stated, fixed): a found episode and a true DKA episode match when they belong to
+the same person and their onsets differ by at most ``--tolerance-hours`` (default 6 h, the
+diagnosis look-back: a finder cannot place an onset before the results that show it).
+Sensitivity = true DKA episodes matched / true DKA episodes in the definition's population (age
+at onset by the truth's ``age_years``); PPV = found episodes matched to any true DKA episode /
+found episodes. The code-based finder's episodes (one per coded visit) are scored the same way
+with onset = visit start; it has no resolution time.
+
+Usage::
+
+    python benchmarks/validity.py --persons 5000 --seed 20261201
+    python benchmarks/validity.py --root DIR        # DIR/extract and DIR/truth already written
+
+The test ``tests/test_episodes_validity.py`` holds documented floors on a 5,000-person extract.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import polars as pl
+
+ROOT = Path(__file__).resolve().parents[1]
+if str(ROOT) not in sys.path:
+    sys.path.insert(0, str(ROOT))
+
+from cohort.definitions import load_definition  # noqa: E402
+from cohort.episodes import CODE_FINDER, find_episodes  # noqa: E402
+
+DEFINITIONS = ("consensus-2024", "ada-2009", "jbds-2023", "ispad-2022")
+TOLERANCE_HOURS = 6.0
+
+
+def _hours(expr: pl.Expr) -> pl.Expr:
+    return expr.dt.total_seconds() / 3600.0
+
+
+def score(found: pl.DataFrame, truth: pl.DataFrame, *, min_age: float | None, max_age: float | None,
+          tolerance_hours: float = TOLERANCE_HOURS) -> dict[str, float | int | None]:
+    """Score one finder's episodes against the true DKA episodes.
+
+    Parameters
+    ----------
+    found
+        Episodes (person_id, episode_id, onset_datetime, resolution_datetime).
+    truth
+        The truth's episodes (person_id, truth_id, kind, onset_datetime, resolution_datetime,
+        age_years).
+    min_age, max_age
+        The definition's population (``min <= age < max``), for the sensitivity's denominator.
+    tolerance_hours
+        Largest onset difference of a match.
+
+    Returns
+    -------
+    dict
+        found, true, matched_found, matched_true, sensitivity, ppv, onset_mae_hours,
+        resolution_mae_hours (medians of absolute differences over matched pairs).
+    """
+    dka = truth.filter(pl.col("kind") == "dka")
+    eligible = dka
+    if min_age is not None:
+        eligible = eligible.filter(pl.col("age_years") >= min_age)
+    if max_age is not None:
+        eligible = eligible.filter(pl.col("age_years") < max_age)
+    if "resolution_datetime" not in found.columns:
+        found = found.with_columns(pl.lit(None, dtype=pl.Datetime("us")).alias("resolution_datetime"))
+    pairs = (
+        found.select("episode_id", "person_id", "onset_datetime", "resolution_datetime")
+        .join(dka.select("truth_id", "person_id", "onset_datetime", "resolution_datetime"),
+              on="person_id", suffix="_true")
+        .with_columns(
+            _hours(pl.col("onset_datetime") - pl.col("onset_datetime_true")).alias("onset_error"),
+            _hours(pl.col("resolution_datetime") - pl.col("resolution_datetime_true")).alias("resolution_error"),
+        )
+        .filter(pl.col("onset_error").abs() <= tolerance_hours)
+    )
+    # one true episode per found one: the closest onset
+    best = pairs.sort(pl.col("onset_error").abs()).unique("episode_id", keep="first")
+    matched_true = best.filter(pl.col("truth_id").is_in(eligible.get_column("truth_id").implode()))
+    true_n = eligible.height
+    found_n = found.height
+    onset_mae = best.get_column("onset_error").abs().median() if best.height else None
+    resolution = best.get_column("resolution_error").drop_nulls().abs()
+    return {
+        "found": found_n,
+        "true": true_n,
+        "matched_found": best.height,
+        "matched_true": matched_true.get_column("truth_id").n_unique(),
+        "sensitivity": matched_true.get_column("truth_id").n_unique() / true_n if true_n else None,
+        "ppv": best.height / found_n if found_n else None,
+        "onset_mae_hours": float(onset_mae) if onset_mae is not None else None,
+        "resolution_mae_hours": float(resolution.median()) if resolution.len() else None,
+    }
+
+
+def validity_table(root: Path, definitions: Sequence[str] = DEFINITIONS, *,
+                   tolerance_hours: float = TOLERANCE_HOURS,
+                   threads: int | None = None) -> tuple[pl.DataFrame, float]:
+    """Find episodes in ``root/extract`` and score them against ``root/truth``.
+
+    Returns the table (one row per definition and the code finder) and the seconds taken by
+    :func:`cohort.episodes.find_episodes`.
+    """
+    truth = pl.read_parquet(Path(root) / "truth" / "episodes.parquet")
+    started = time.perf_counter()
+    result = find_episodes(Path(root) / "extract", list(definitions), threads=threads)
+    seconds = time.perf_counter() - started
+    rows = []
+    for name in definitions:
+        population = load_definition(name).population
+        found = result.episodes.filter(pl.col("definition") == name)
+        rows.append({"definition": name, **score(found, truth, min_age=population.min_age_years,
+                                                 max_age=population.max_age_years,
+                                                 tolerance_hours=tolerance_hours)})
+    rows.append({"definition": CODE_FINDER, **score(result.code_episodes, truth, min_age=None, max_age=None,
+                                                    tolerance_hours=tolerance_hours)})
+    return pl.DataFrame(rows), seconds
+
+
+def _print(table: pl.DataFrame, seconds: float, tolerance: float, where: Mapping[str, object]) -> None:
+    print(f"validity against truth ({where}); onset match tolerance {tolerance:g} h; "
+          f"find_episodes {seconds:.1f} s")
+    header = f"{'definition':<16}{'found':>7}{'true':>7}{'sens':>8}{'ppv':>8}{'onset MAE h':>13}{'resol. MAE h':>14}"
+    print(header)
+    for row in table.iter_rows(named=True):
+        def show(value, digits=3):
+            return "-" if value is None else f"{value:.{digits}f}"
+        print(f"{row['definition']:<16}{row['found']:>7}{row['true']:>7}{show(row['sensitivity']):>8}"
+              f"{show(row['ppv']):>8}{show(row['onset_mae_hours'], 2):>13}{show(row['resolution_mae_hours'], 2):>14}")
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--root", type=Path, help="folder holding extract/ and truth/ (else one is generated)")
+    parser.add_argument("--persons", type=int, default=5000)
+    parser.add_argument("--seed", type=int, default=20261201)
+    parser.add_argument("--tolerance-hours", type=float, default=TOLERANCE_HOURS)
+    parser.add_argument("--threads", type=int, default=None)
+    args = parser.parse_args(argv)
+    if args.root is None:
+        from synthetic import generate_extract
+
+        root = Path(tempfile.mkdtemp(prefix="dka-validity-"))
+        generate_extract(persons=args.persons, seed=args.seed, out=root, progress=False)
+        where = {"persons": args.persons, "seed": args.seed}
+    else:
+        root = args.root
+        where = {"root": str(root)}
+    table, seconds = validity_table(root, tolerance_hours=args.tolerance_hours, threads=args.threads)
+    _print(table, seconds, args.tolerance_hours, where)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
