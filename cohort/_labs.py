@@ -15,13 +15,21 @@ The reconciliation identity is checked on every run, from counts taken independe
                                       + rows quarantined (dka_quarantine, measurement rows)
                                       + rows of other analytes (concept not in dka_concept_lab)
 
+``dka_measurement_checked`` (tens of millions of rows at a million persons) is kept compressed in
+a scratch database file behind a temporary view (:func:`_work_catalog`); ``dka_lab_events`` is a
+view of its usable rows. ``on_step`` reports each recipe's time (``benchmarks/bench_labs.py``).
+
 The unit conversions the recipes apply come from ``units.csv``; :func:`convert` applies one rule in
 Python (the worked-example tests check both against published factors).
 """
 
 from __future__ import annotations
 
+import shutil
+import tempfile
 import time
+import weakref
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -59,6 +67,39 @@ LAB_RECIPES: tuple[tuple[str, str], ...] = (
 
 #: Session objects made as temporary views rather than tables (same columns, same name).
 _VIEWS = frozenset({"dka_lab_events"})
+
+#: Session tables stored compressed in a scratch database file (see :func:`_work_catalog`): every
+#: measurement row of a DKA analyte, about 56 million rows at a million persons, which take some
+#: 90 bytes a row as an uncompressed temporary table (5 GB, spilled under a 3 GB memory limit)
+#: and about 10 as compressed row groups; a temporary view of the same name reads it.
+_STORED = frozenset({"dka_measurement_checked"})
+
+#: Name of the attached scratch database holding the :data:`_STORED` tables.
+_WORK = "dka_work"
+
+
+def _work_catalog(extract: Extract) -> str:
+    """Attach (once per session) a scratch DuckDB database file and return its catalog name.
+
+    A table created in a database file is written as compressed row groups as it is built, so the
+    buffer manager can drop its pages and read them back instead of spilling uncompressed rows;
+    a temporary table of the in-memory session is not compressed. The file lives in a new folder
+    under the session's ``temp_directory`` (else the system temporary folder) and is removed when
+    the extract handle is garbage-collected or the interpreter exits. The recipes are unchanged:
+    this is only where DuckDB keeps one result.
+    """
+    con = extract.con
+    attached = con.execute(
+        "select count(*) from duckdb_databases() where database_name = ?", [_WORK]).fetchall()[0][0]
+    if attached:
+        return _WORK
+    configured = str(con.execute("select current_setting('temp_directory')").fetchall()[0][0] or "")
+    parent = Path(configured) if configured and Path(configured).is_dir() else None
+    folder = Path(tempfile.mkdtemp(prefix="dka-cohort-work-", dir=parent))
+    weakref.finalize(extract, shutil.rmtree, folder, True)
+    database = str(folder / "work.duckdb").replace("'", "''")
+    con.execute(f"attach '{database}' as {_WORK}")
+    return _WORK
 
 #: Measurement quarantine reasons in priority order (the first that applies is given).
 QUARANTINE_REASONS: tuple[str, ...] = (
@@ -144,6 +185,7 @@ def prepare_lab_events(
     extract: Extract,
     *,
     codelists: str | Path | CodeLists | None = None,
+    on_step: Callable[[str, float], None] | None = None,
 ) -> LabSummary:
     """Build ``dka_lab_events`` and ``dka_quarantine`` (and the ``dka_concept_*`` tables).
 
@@ -154,6 +196,9 @@ def prepare_lab_events(
     codelists
         A folder with the seven code-list CSVs, already read :class:`CodeLists`, or None for the
         bundled ones.
+    on_step
+        Called as ``on_step(name, seconds)`` after each recipe (``name`` is the recipe file) and
+        after the reconciliation counts (``"accounting"``); for benchmarks and progress.
 
     Returns
     -------
@@ -182,13 +227,22 @@ def prepare_lab_events(
     con = extract.con
     register_codelists(con, lists)
     for recipe, target in LAB_RECIPES:
+        step_started = time.perf_counter()
         if target in _VIEWS:
             # a filter of dka_measurement_checked: a view saves copying every usable row
             Identifier(target)
             con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, {})}")
+        elif target in _STORED:
+            Identifier(target)
+            work = _work_catalog(extract)
+            con.execute(f"create or replace table {work}.main.{target} as\n{render_recipe(recipe, {})}")
+            con.execute(f"create or replace temp view {target} as select * from {work}.main.{target}")
         else:
             run_recipe(con, recipe, target, {})
+        if on_step is not None:
+            on_step(recipe, time.perf_counter() - step_started)
 
+    step_started = time.perf_counter()
     rows_read = extract.row_count("measurement")
     rows_used = _scalar(con, "select count(*) from dka_lab_events")
     rows_quarantined = _scalar(
@@ -227,6 +281,8 @@ def prepare_lab_events(
         unresolved_codes=unresolved,
         seconds=time.perf_counter() - started,
     )
+    if on_step is not None:
+        on_step("accounting", time.perf_counter() - step_started)
     if not summary.reconciles:
         msg = (f"measurement rows do not reconcile: read {rows_read}, but used {rows_used} + "
                f"quarantined {rows_quarantined} + other analytes {rows_other} = "

@@ -88,6 +88,17 @@ deaths as (
     group by person_id
 ),
 
+-- person facts joined once here (a million rows), not once per measurement row
+person_facts as (
+    select
+        persons.person_id,
+        persons.birth_datetime,
+        deaths.death_date
+    from persons
+    left join deaths
+        on deaths.person_id = persons.person_id
+),
+
 periods as (
     select
         person_id,
@@ -194,6 +205,10 @@ collisions as (
         on collision_keys.person_id = measurement.person_id
         and collision_keys.measurement_concept_id = measurement.measurement_concept_id
         and collision_keys.measurement_datetime = measurement.measurement_datetime
+    -- implied by the join; stated so the scan skips other analytes' rows and date-only rows
+    -- before reading their other columns (a semi-join: a concept listed twice adds no row)
+    where measurement.measurement_datetime is not null
+        and measurement.measurement_concept_id in (select lab_concepts.concept_id from lab_concepts)
 ),
 
 duplicate_ranks as (
@@ -235,9 +250,9 @@ joined as (
         measurements.unit_source_value,
         measurements.analyte,
         measurements.specimen,
-        persons.person_id as known_person_id,
-        persons.birth_datetime,
-        deaths.death_date,
+        person_facts.person_id as known_person_id,
+        person_facts.birth_datetime,
+        person_facts.death_date,
         periods_merged.person_id as observed_person_id,
         unit_rules.analyte as unit_rule_analyte,
         unit_rules.multiply,
@@ -247,10 +262,8 @@ joined as (
         coalesce(ketone_concepts.ordinal, ketone_texts.ordinal) as ordinal,
         case when duplicates.measurement_id is null then false else true end as is_duplicate
     from measurements
-    left join persons
-        on persons.person_id = measurements.person_id
-    left join deaths
-        on deaths.person_id = measurements.person_id
+    left join person_facts
+        on person_facts.person_id = measurements.person_id
     left join periods_merged
         on periods_merged.person_id = measurements.person_id
         and cast(measurements.measurement_datetime as date) >= periods_merged.start_date
@@ -337,7 +350,8 @@ final as (
         specimen,
         value,
         reason,
-        case reason
+        -- most rows are usable: test for that first, then name the reason
+        case when reason is not null then case reason
             when 'person_unknown' then 'person_id ' || coalesce(cast(person_id as varchar), 'null') || ' is not in person'
             when 'no_time' then 'measurement_datetime is null (measurement_date '
                 || coalesce(cast(measurement_date as varchar), 'null') || ')'
@@ -359,7 +373,7 @@ final as (
                         || cast(low as varchar) || ' .. ' || cast(high as varchar)
                 end
             when 'duplicate' then 'same person, concept, time, unit and value as a row with a lower measurement_id'
-        end as detail
+        end end as detail
     from reasoned
 )
 

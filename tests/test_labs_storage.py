@@ -1,0 +1,61 @@
+"""Where prepare_lab_events keeps its large result, and its timing callback (brief H9).
+
+``dka_measurement_checked`` (every measurement row of a DKA analyte) is stored in a scratch
+DuckDB database file, compressed, behind a temporary view of the same name; the folder goes when
+the extract handle does. These are engineering checks of the toolkit's own design (no clinical
+reference applies); the clinical content of the same tables is checked in test_labs.py and
+test_labs_reference.py.
+"""
+
+from __future__ import annotations
+
+import gc
+from pathlib import Path
+
+from cohort._labs import LAB_RECIPES, prepare_lab_events
+from cohort.source import open_extract
+from tests.cdmkit import MiniCdm
+
+
+def _extract(tmp_path: Path) -> Path:
+    cdm = MiniCdm()
+    cdm.person(1, birth="1980-05-01")
+    cdm.lab(1, "2345-7", 250.0, unit="mg/dL", at="2024-03-01 09:00")
+    cdm.lab(1, "2345-7", 250.0, unit="mg/dL", at="2024-03-01 09:00")  # a duplicate posting
+    cdm.lab(1, "2345-7", 251.0, unit="mg/dL", at="2024-03-01 09:00")  # same time, other value
+    cdm.lab(1, "1963-8", 12.0, unit="mmol/L", at=None, date="2024-03-01")  # date only
+    return cdm.write(tmp_path / "x", fmt="parquet")
+
+
+def test_checked_rows_live_in_the_scratch_database(tmp_path: Path) -> None:
+    with open_extract(_extract(tmp_path)) as extract:
+        prepare_lab_events(extract)
+        con = extract.con
+        stored = con.execute(
+            "select database_name from duckdb_tables() where table_name = 'dka_measurement_checked'"
+        ).fetchall()
+        assert stored == [("dka_work",)]
+        views = con.execute(
+            "select count(*) from duckdb_views() where view_name = 'dka_measurement_checked' and temporary"
+        ).fetchall()[0][0]
+        assert views == 1
+        reasons = con.execute(
+            "select reason, count(*) from dka_measurement_checked group by reason order by reason").fetchall()
+        assert reasons == [("duplicate", 1), ("no_time", 1), (None, 2)]
+        folder = Path(con.execute(
+            "select path from duckdb_databases() where database_name = 'dka_work'").fetchall()[0][0]).parent
+        assert folder.is_dir()
+        # a second run in the same session replaces the tables and reuses the scratch database
+        prepare_lab_events(extract)
+        assert con.execute("select count(*) from dka_measurement_checked").fetchall()[0][0] == 4
+    del extract
+    gc.collect()
+    assert not folder.exists()
+
+
+def test_on_step_reports_every_recipe_then_the_accounting(tmp_path: Path) -> None:
+    steps: list[tuple[str, float]] = []
+    with open_extract(_extract(tmp_path)) as extract:
+        prepare_lab_events(extract, on_step=lambda name, seconds: steps.append((name, seconds)))
+    assert [name for name, _ in steps] == [recipe for recipe, _ in LAB_RECIPES] + ["accounting"]
+    assert all(seconds >= 0 for _, seconds in steps)
