@@ -28,7 +28,8 @@ pytestmark = pytest.mark.skipif(
 
 @pytest.fixture(scope="module")
 def demo_report(tmp_path_factory) -> Path:
-    """Synthetic extract -> episodes -> features -> report, small enough for a quick test."""
+    """Synthetic extract -> episodes -> features -> statistics -> report, small enough for a quick test."""
+    from cohort.analyse import run_analyses
     from cohort.episodes import find_episodes
     from cohort.features import build_features, load_feature_inputs, write_features
     from cohort.report import write_report
@@ -42,9 +43,15 @@ def demo_report(tmp_path_factory) -> Path:
                              out=root / "results" / "episodes")
     tables = build_features(episodes.episodes, load_feature_inputs(extract, episodes.episodes))
     write_features(tables, root / "results" / "features")
+    run_analyses(root / "results" / "features", root / "results" / "stats", definition="consensus-2024")
     summary = write_report(root / "results", root / "report" / "report.html")
     assert summary.charts >= 5
     return summary.out_file
+
+
+#: Charts the statistics stage's tables must give (data-chart names of the figures).
+STATS_CHARTS = ("cif_resolution", "forest_resolution_cox", "cif_recurrence", "rates_by_diabetes_type",
+                "forest_recurrence_andersen_gill", "prediction_calibration")
 
 
 def _open(path: Path, profile: Path) -> tuple[list[str], list[str]]:
@@ -97,6 +104,10 @@ def test_report_opens_offline_and_draws_every_chart(demo_report: Path, artefact_
                 timeout=30_000,
             )
             figures = page.locator("figure.chart").count()
+            names = page.evaluate("() => [...document.querySelectorAll('figure.chart')].map(f => f.dataset.chart)")
+            forest_axis = page.evaluate(
+                "() => { const d = document.querySelector('figure[data-chart=forest_resolution_cox] .js-plotly-plot');"
+                " return d ? d._fullLayout.xaxis.type : null; }")
             drawn = page.evaluate(
                 "() => [...document.querySelectorAll('figure.chart')].map(f => "
                 "f.querySelectorAll('.js-plotly-plot svg.main-svg g.trace path').length)"
@@ -113,3 +124,6 @@ def test_report_opens_offline_and_draws_every_chart(demo_report: Path, artefact_
     assert figures >= 5
     assert len(drawn) == figures and all(count > 0 for count in drawn), drawn
     assert len(titles) == figures and all(title.strip() for title in titles)
+    missing = [name for name in STATS_CHARTS if name not in names]
+    assert missing == [], f"charts from the statistics stage not drawn: {missing}; drawn: {names}"
+    assert forest_axis == "log"

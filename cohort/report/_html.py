@@ -10,8 +10,11 @@ before they are moved into place.
 Results it reads (each optional; found flat in ``results_dir`` or in its ``episodes/``,
 ``features/`` and ``stats/`` subfolders, see :data:`KNOWN_FILES`): the episodes stage's
 ``episodes.parquet``, ``attrition.csv``, ``data_quality.csv``, ``agreement.csv`` and
-``manifest.json``; the features stage's ``episode_features.parquet``; any further CSV tables in
-``stats/``, shown as they are after disclosure control of their count columns.
+``manifest.json``; the features stage's ``episode_features.parquet``; the statistics stage's
+``stats/`` tables, drawn by :mod:`cohort.report._stats` (cumulative incidence with competing
+events, forest plots of the Cox, recurrence and logistic models, incidence rates, age-standardised
+rates, the prediction model's discrimination and calibration); any further CSV tables in
+``stats/`` are shown as they are after disclosure control of their count columns.
 """
 
 from __future__ import annotations
@@ -43,8 +46,10 @@ from cohort.report._check import COUNT_COLUMN_PATTERN, IDENTIFIER_COLUMNS, Viola
 from cohort.report._control import p_chart
 from cohort.report._funnel import curve_denominators, funnel_limits, funnel_position
 from cohort.report._runchart import analyse_run_chart
+from cohort.report._stats import HANDLED as STATS_HANDLED
+from cohort.report._stats import recurrence_blocks, resolution_blocks
 from cohort.report._table_one import table_one
-from cohort.report._tables import attrition_table, is_small, km_truncate, median_table, share_table
+from cohort.report._tables import attrition_table, is_small, km_truncate, median_table, share_table, suppress_table
 
 __all__ = ["CAUTIONS", "KNOWN_FILES", "ReportSummary", "write_report"]
 
@@ -465,7 +470,8 @@ def _resolution_section(build: _Builder, results_dir: Path) -> _Section | None:
     episodes = _read(results_dir, "episodes.parquet")
     if episodes is None:
         build.skip("Time to resolution", "no episodes.parquet in the results")
-        return None
+        section.blocks.extend(resolution_blocks(build, results_dir))
+        return section if section.blocks else None
     for group, name, title, part in (
         ("definition", "km_definition", "Time to resolution by definition", "by definition"),
         ("severity", "km_severity", f"Time to resolution by severity at onset ({_primary(episodes)})", "by severity"),
@@ -477,6 +483,7 @@ def _resolution_section(build: _Builder, results_dir: Path) -> _Section | None:
         except (_Skip, CohortError) as error:
             section.blocks.pop()
             build.skip(f"Time to resolution {part}", str(error))
+    section.blocks.extend(resolution_blocks(build, results_dir))
     return section if section.blocks else None
 
 
@@ -668,11 +675,11 @@ def _recurrence_section(build: _Builder, results_dir: Path) -> _Section | None:
                                               "(numerator) of episodes with complete follow-up (denominator)"))
         else:
             build.skip("Recurrence", "episode_features has no recurs_within_* columns")
+    section.blocks.extend(recurrence_blocks(build, results_dir))
     stats_dir = results_dir / "stats"
-    found = sorted(stats_dir.glob("*.csv")) if stats_dir.is_dir() else []
-    if not found:
-        build.skip("Rates, cumulative incidence and regression tables",
-                   "no stats/ folder of CSV tables in the results (the statistics stage writes none yet)")
+    found = sorted(p for p in stats_dir.glob("*.csv") if p.stem not in STATS_HANDLED) if stats_dir.is_dir() else []
+    if found:
+        section.blocks.append(_h3("Further tables of the statistics stage"))
     for path in found:
         try:
             frame = pl.read_csv(path, infer_schema_length=10000)
@@ -683,16 +690,11 @@ def _recurrence_section(build: _Builder, results_dir: Path) -> _Section | None:
         frame = frame.drop(drop)
         counts = [c for c in frame.columns if COUNT_COLUMN_PATTERN.fullmatch(c.lower()) and _whole_numbers(frame[c])]
         frame = frame.with_columns(*[pl.col(c).cast(pl.Int64) for c in counts])
-        # each count column is taken as one group (its cells may add up to a total shown elsewhere)
-        shown = suppress_counts(frame, counts, threshold=build.threshold, group_by=None) if counts else frame
-        if counts:
-            # every other figure of a row with a hidden count (a rate, a share, a person-time) could
-            # give it back: withhold them all in that row
-            hidden = pl.any_horizontal(
-                [pl.col(c).is_in([suppressed_label(build.threshold), SECONDARY_LABEL]) for c in counts])
-            figures = [c for c, dtype in shown.schema.items() if c not in counts and dtype.is_numeric()]
-            shown = shown.with_columns(*[pl.when(hidden).then(None).otherwise(pl.col(c)).alias(c) for c in figures])
-        section.blocks.append(_h3(path.stem.replace("_", " ")))
+        # each count column is one group (its cells may add up to a total shown elsewhere), n and
+        # events of a row another (with n - events); every other figure of a row with a hidden count
+        # (a rate, a share, a person-time) could give it back: all are withheld in that row
+        shown = suppress_table(frame, counts, threshold=build.threshold)
+        section.blocks.append(Markup("<h4>") + path.stem.replace("_", " ") + Markup("</h4>"))
         section.blocks.append(build.table(shown, path.stem, f"{path.name} from the statistics stage"))
     return section if section.blocks else None
 
@@ -752,6 +754,16 @@ def _manifest_block(results_dir: Path, threshold: int) -> list[Markup]:
         "<li>Funnel plot: exact binomial 95% and 99.8% limits around the pooled share, interpolated between the "
         "binomial steps (Spiegelhalter DJ, Stat Med 2005;24:1185-1202).</li>"
         "<li>Kaplan-Meier: product-limit estimate with lifelines; numbers at risk counted at the times shown.</li>"
+        "<li>Cumulative incidence with competing events: Aalen-Johansen estimator (Aalen O, Johansen S, Scand J Stat "
+        "1978;5:141-150); curves stop where fewer than the threshold remain at risk.</li>"
+        "<li>Forest plots: hazard (or odds) ratios exp(coef) with 95% Wald CIs from the statistics stage, on a log "
+        "axis; beside each Cox term the proportional-hazards test on scaled Schoenfeld residuals (Grambsch PM, "
+        "Therneau TM, Biometrika 1994;81:515-526). Model estimates are withheld when the model rests on fewer than "
+        "the threshold of episodes or events.</li>"
+        "<li>Incidence rates: events per person-years with exact Poisson CIs as the statistics stage states; "
+        "age-standardised rates by direct standardisation to the standard population named.</li>"
+        "<li>Prediction: AUROC with the CI method named, calibration intercept and slope, and observed against "
+        "predicted risk by bin (Steyerberg EW, Clinical Prediction Models, 2nd ed., 2019, ch. 15).</li>"
         "<li>Colours: Okabe M, Ito K, Color Universal Design, 2008.</li>"
         "</ul>"))
     return blocks

@@ -14,12 +14,21 @@ Rules added here on top of :mod:`cohort.disclosure`, all common practice of smal
   shown as ``"<10"`` and the step's own count as ``"withheld"`` so that it cannot be recovered.
 - **medians and quartiles** of a group of fewer than threshold episodes are withheld.
 - **numbers at risk** under a Kaplan-Meier plot are suppressed like any count, and the curve is
-  cut at the first time fewer than threshold remain at risk.
+  cut at the first time fewer than threshold remain at risk (cumulative incidence curves alike).
+- **model tables** (hazard, odds and rate ratios): n, events and n - events (``n_without_event``)
+  of a model are one group (suppressed with secondary suppression, as one row of a table with a
+  total); the model's estimates, CIs and p-values are withheld when its n or its events are below
+  the threshold. An estimate is not a count; output checking commonly releases model estimates
+  that rest on enough events (common practice of output checking).
+- **cells adding up both ways** (events by type and year; n and events per calibration bin, whose
+  columns add up to the model's totals): :func:`suppress_cells` repeats secondary suppression over
+  every group until no group has exactly one hidden cell.
 """
 
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Sequence
 
 import polars as pl
@@ -28,11 +37,17 @@ from cohort.disclosure import SECONDARY_LABEL, suppress_counts, suppressed_label
 
 __all__ = [
     "attrition_table",
+    "calibration_table",
     "is_small",
+    "mask_small_numbers",
+    "model_table",
+    "rate_table",
+    "suppress_cells",
     "km_truncate",
     "median_table",
     "share_table",
     "show_count",
+    "suppress_table",
 ]
 
 
@@ -216,3 +231,234 @@ def km_truncate(curve: pl.DataFrame, *, threshold: int, group: str = "group") ->
         .filter(~pl.col("_cut"))
         .drop("_cut")
     )
+
+
+def suppress_cells(values: Sequence[int | None], groups: Sequence[Sequence[int]], *, threshold: int) -> list[str]:
+    """Suppress cells that belong to several additive groups (a row and a column of a two-way table).
+
+    Counts from 1 to ``threshold - 1`` become ``"<threshold"``; then, as long as some group holds
+    exactly one hidden cell, its smallest other non-zero cell is ``"withheld"`` (repeated until every
+    group has none or at least two hidden, so no hidden cell is a total less the others shown).
+
+    Parameters
+    ----------
+    values
+        The cells, flattened (``None`` for a missing cell, shown as ``""``).
+    groups
+        Each a list of indices into ``values`` whose sum is published or recoverable.
+
+    Examples
+    --------
+    >>> suppress_cells([40, 3, 48, 12], [[0, 1], [2, 3], [0, 2], [1, 3]], threshold=10)
+    ['withheld', '<10', 'withheld', 'withheld']
+    """
+    label = suppressed_label(threshold)
+    hidden = [is_small(v, threshold) for v in values]
+    primary = list(hidden)
+    changed = True
+    while changed:
+        changed = False
+        for group in groups:
+            inside = [i for i in group if hidden[i]]
+            if len(inside) != 1:
+                continue
+            others = [i for i in group if not hidden[i] and values[i] is not None and int(values[i]) > 0]
+            if others:
+                hidden[min(others, key=lambda i: (int(values[i]), i))] = True
+                changed = True
+    shown = []
+    for index, value in enumerate(values):
+        if value is None or (isinstance(value, float) and math.isnan(value)):
+            shown.append("")
+        elif primary[index]:
+            shown.append(label)
+        elif hidden[index]:
+            shown.append(SECONDARY_LABEL)
+        else:
+            shown.append(str(int(value)))
+    return shown
+
+
+_NUMBER = re.compile(r"(?<![\w.])(\d+)(?![\w.])")
+
+
+def mask_small_numbers(text: str | None, *, threshold: int) -> str | None:
+    """Replace whole numbers from 1 to ``threshold - 1`` inside free text with ``"<threshold"``.
+
+    Examples
+    --------
+    >>> mask_small_numbers("left out: 4 row(s) null; 120 kept", threshold=10)
+    'left out: <10 row(s) null; 120 kept'
+    >>> mask_small_numbers("fewer than 5 events of cause died", threshold=10)
+    'fewer than 5 events of cause died'
+    """
+    if text is None:
+        return None
+    text = str(text)
+
+    def replace(match: re.Match[str]) -> str:
+        # a rule's own limit ("fewer than 5 events") is not a count of anyone
+        if text[:match.start()].rstrip().lower().endswith(("fewer than", "at least", "more than")):
+            return match.group(1)
+        return suppressed_label(threshold) if is_small(int(match.group(1)), threshold) else match.group(1)
+
+    return _NUMBER.sub(replace, text)
+
+
+def _hidden(text: str, threshold: int) -> bool:
+    return text in (suppressed_label(threshold), SECONDARY_LABEL)
+
+
+def model_table(frame: pl.DataFrame, *, threshold: int, figures: Sequence[str] = (
+        "coef", "se", "estimate", "lower", "upper", "z", "p", "ph_statistic", "ph_p")) -> pl.DataFrame:
+    """A regression table (one row per term) after disclosure control.
+
+    ``n``, ``events`` and ``n_without_event`` (n - events, added) of each row are one group with
+    secondary suppression; ``n_clusters`` (persons) is suppressed on its own. The ``figures`` of a
+    row whose n or events is below the threshold are withheld (null); free text (``left_out``,
+    ``warning``) has its small numbers masked.
+
+    Examples
+    --------
+    >>> t = pl.DataFrame({"term": ["a", "b"], "estimate": [1.5, 0.8], "n": [305, 40], "events": [301, 6]})
+    >>> model_table(t, threshold=10).select("term", "n", "events", "n_without_event", "estimate").rows()
+    [('a', '305', 'withheld', '<10', 1.5), ('b', '40', '<10', 'withheld', None)]
+    """
+    work = frame
+    if "n" in work.columns and "events" in work.columns:
+        work = work.with_columns((pl.col("n").cast(pl.Int64) - pl.col("events").cast(pl.Int64)).alias("n_without_event"))
+    counts = [c for c in ("n", "events", "n_without_event") if c in work.columns]
+    values: list[int | None] = []
+    groups: list[list[int]] = []
+    for row in work.select(counts).iter_rows():
+        groups.append(list(range(len(values), len(values) + len(counts))))
+        values.extend(None if v is None else int(v) for v in row)
+    shown = suppress_cells(values, groups, threshold=threshold)
+    columns = {c: shown[i::len(counts)] for i, c in enumerate(counts)} if counts else {}
+    small_rows = [any(is_small(work[c][r], threshold) for c in ("n", "events") if c in work.columns)
+                  for r in range(work.height)]
+    out = work.with_columns(*[pl.Series(c, v, dtype=pl.String) for c, v in columns.items()])
+    if "n_clusters" in out.columns:
+        out = out.with_columns(pl.Series("n_clusters", [show_count(v, threshold) for v in work["n_clusters"].to_list()],
+                                         dtype=pl.String))
+    keep = pl.Series("_small", small_rows, dtype=pl.Boolean)
+    out = out.with_columns(keep)
+    out = out.with_columns(*[pl.when(pl.col("_small")).then(None).otherwise(pl.col(c)).alias(c)
+                             for c in figures if c in out.columns]).drop("_small")
+    for text in ("left_out", "warning"):
+        if text in out.columns:
+            out = out.with_columns(pl.Series(text, [mask_small_numbers(v, threshold=threshold)
+                                                    for v in out[text].cast(pl.String).to_list()], dtype=pl.String))
+    return out
+
+
+def rate_table(frame: pl.DataFrame, *, threshold: int, groups_by: Sequence[Sequence[str]] = ((),),
+               count: str = "events") -> pl.DataFrame:
+    """Incidence rates after disclosure control: events suppressed, figures of hidden rows withheld.
+
+    Parameters
+    ----------
+    groups_by
+        Each a list of columns whose distinct values mark rows adding up to a published total
+        (``()``: the whole table); for events by type and year give ``(["diabetes_type"],
+        ["calendar_year"])`` so both ways are protected.
+
+    Examples
+    --------
+    >>> t = pl.DataFrame({"type": ["a", "b", "c"], "events": [120, 4, 35], "estimate": [10.0, 1.0, 3.0]})
+    >>> rate_table(t, threshold=10).select("events", "estimate").rows()
+    [('120', 10.0), ('<10', None), ('withheld', None)]
+    """
+    values = [None if v is None else int(v) for v in frame[count].to_list()]
+    groups: list[list[int]] = []
+    for keys in groups_by:
+        members: dict[tuple, list[int]] = {}
+        rows = frame.select(list(keys)).rows() if keys else [()] * frame.height
+        for index, key in enumerate(rows):
+            members.setdefault(tuple(key), []).append(index)
+        groups.extend(members.values())
+    shown = suppress_cells(values, groups, threshold=threshold)
+    out = frame.with_columns(pl.Series(count, shown, dtype=pl.String))
+    hidden = pl.col(count).is_in([suppressed_label(threshold), SECONDARY_LABEL])
+    figures = [c for c, dtype in out.schema.items() if c != count and dtype.is_numeric() and c not in ("per", "bands",
+               "calendar_year", "year")]
+    out = out.with_columns(*[pl.when(hidden).then(None).otherwise(pl.col(c)).alias(c) for c in figures])
+    if "left_out" in out.columns:
+        out = out.with_columns(pl.Series("left_out", [mask_small_numbers(v, threshold=threshold)
+                                                      for v in out["left_out"].cast(pl.String).to_list()]))
+    return out
+
+
+def calibration_table(frame: pl.DataFrame, *, threshold: int) -> pl.DataFrame:
+    """Calibration bins after disclosure control.
+
+    n, events and n - events of each bin form a row group; the bins' n, events and non-events
+    each add up to the model's totals (published with the metrics), so each column is a group too.
+    A bin with any hidden count loses its observed share, CI and mean predicted risk.
+
+    Examples
+    --------
+    >>> t = pl.DataFrame({"bin": [1, 2, 3], "mean_predicted": [0.1, 0.3, 0.6], "observed": [0.1, 0.3, 0.62],
+    ...                   "n": [30, 30, 50], "events": [3, 9, 31]})
+    >>> calibration_table(t, threshold=10).select("n", "events", "n_without_event", "observed").rows()
+    [('30', '<10', 'withheld', None), ('30', '<10', 'withheld', None), ('50', '31', '19', 0.62)]
+    """
+    work = frame.with_columns((pl.col("n").cast(pl.Int64) - pl.col("events").cast(pl.Int64)).alias("n_without_event"))
+    counts = ("n", "events", "n_without_event")
+    values: list[int | None] = []
+    for row in work.select(counts).iter_rows():
+        values.extend(None if v is None else int(v) for v in row)
+    width = len(counts)
+    groups = [list(range(r * width, r * width + width)) for r in range(work.height)]
+    groups += [list(range(c, len(values), width)) for c in range(width)]
+    shown = suppress_cells(values, groups, threshold=threshold)
+    out = work.with_columns(*[pl.Series(c, shown[i::width], dtype=pl.String) for i, c in enumerate(counts)])
+    hidden = pl.any_horizontal([pl.col(c).is_in([suppressed_label(threshold), SECONDARY_LABEL]) for c in counts])
+    figures = [c for c in ("mean_predicted", "observed", "lower", "upper") if c in out.columns]
+    return out.with_columns(*[pl.when(hidden).then(None).otherwise(pl.col(c)).alias(c) for c in figures])
+
+
+def suppress_table(frame: pl.DataFrame, counts: Sequence[str], *, threshold: int) -> pl.DataFrame:
+    """A results table of any shape after disclosure control of its ``counts`` columns.
+
+    Each count column is one group (its cells may add up to a total shown elsewhere). Where both
+    ``n`` and ``events`` are counts, ``n_without_event`` (n - events) is added and each row's n,
+    events and n - events are a group too, so that a small number without the event (censored,
+    non-events) cannot be recovered by subtraction. Every other numeric figure of a row with a
+    hidden count is withheld; small numbers inside free text (``left_out``, ``warning``, ``note``)
+    are masked.
+
+    Examples
+    --------
+    >>> t = pl.DataFrame({"group": ["a", "b", "c"], "estimate": [13.9, 12.0, 14.1], "n": [139, 60, 80],
+    ...                   "events": [138, 50, 70]})
+    >>> suppress_table(t, ["n", "events"], threshold=10).rows()
+    [('a', None, '139', 'withheld', '<10'), ('b', None, '60', 'withheld', 'withheld'), ('c', 14.1, '80', '70', '10')]
+    """
+    work = frame
+    columns = list(counts)
+    paired = "n" in columns and "events" in columns and bool(
+        (work["n"].fill_null(0).cast(pl.Int64) >= work["events"].fill_null(0).cast(pl.Int64)).all())
+    if paired:
+        work = work.with_columns((pl.col("n").cast(pl.Int64) - pl.col("events").cast(pl.Int64)).alias("n_without_event"))
+        columns.append("n_without_event")
+    if not columns:
+        return work
+    width = len(columns)
+    values: list[int | None] = []
+    for row in work.select(columns).iter_rows():
+        values.extend(None if v is None else int(v) for v in row)
+    groups = [list(range(c, len(values), width)) for c in range(width)]
+    if paired:
+        trio = [columns.index("n"), columns.index("events"), columns.index("n_without_event")]
+        groups += [[r * width + i for i in trio] for r in range(work.height)]
+    shown = suppress_cells(values, groups, threshold=threshold)
+    out = work.with_columns(*[pl.Series(c, shown[i::width], dtype=pl.String) for i, c in enumerate(columns)])
+    hidden = pl.any_horizontal([pl.col(c).is_in([suppressed_label(threshold), SECONDARY_LABEL]) for c in columns])
+    figures = [c for c, dtype in out.schema.items() if c not in columns and dtype.is_numeric()]
+    out = out.with_columns(*[pl.when(hidden).then(None).otherwise(pl.col(c)).alias(c) for c in figures])
+    for text in ("left_out", "warning", "note"):
+        if text in out.columns and out.schema[text] == pl.String:
+            out = out.with_columns(pl.Series(text, [mask_small_numbers(v, threshold=threshold)
+                                                    for v in out[text].to_list()], dtype=pl.String))
+    return out
