@@ -221,6 +221,11 @@ def _add_synth_options(parser: argparse.ArgumentParser, *, default_persons: int)
     parser.add_argument("--quiet", action="store_true", help="do not show progress")
 
 
+def _add_engine_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--threads", type=_positive_int, help="DuckDB worker threads (default: one per core)")
+    parser.add_argument("--memory-limit", help="DuckDB memory limit, e.g. 4GB (default: DuckDB's)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """Build the argument parser of the ``dka-cohort`` command."""
     parser = _Parser(
@@ -281,8 +286,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="override a definition value for every definition, e.g. timing.episode_gap_hours=48; repeatable",
     )
     episodes.add_argument("--codelists", help="a folder of code-list CSVs replacing the bundled ones")
-    episodes.add_argument("--threads", type=_positive_int, help="DuckDB worker threads (default: one per core)")
-    episodes.add_argument("--memory-limit", help="DuckDB memory limit, e.g. 4GB (default: DuckDB's)")
+    _add_engine_options(episodes)
     episodes.add_argument("--quiet", action="store_true", help="do not show progress")
     episodes.set_defaults(func=_cmd_episodes)
 
@@ -305,8 +309,7 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="NAME=VALUE",
         help="a feature option, e.g. hypoglycaemia_mmol_l=4.0; repeatable",
     )
-    features.add_argument("--threads", type=_positive_int, help="DuckDB worker threads (default: one per core)")
-    features.add_argument("--memory-limit", help="DuckDB memory limit, e.g. 4GB (default: DuckDB's)")
+    _add_engine_options(features)
     features.set_defaults(func=_cmd_features)
 
     analyse = sub.add_parser(
