@@ -644,6 +644,7 @@ def find_episodes(
             if target is not None:
                 with steps.step("write", "writing outputs"):
                     staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=target.parent))
+                    staging.chmod(0o755)  # mkdtemp makes it private; the results are an ordinary folder
                     try:
                         episodes.write_parquet(staging / "episodes.parquet")
                         attrition.write_csv(staging / "attrition.csv")

@@ -36,6 +36,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 import json
+import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -457,8 +458,9 @@ def open_extract(
         config["threads"] = int(threads)
     if memory_limit is not None:
         config["memory_limit"] = str(memory_limit)
-    if temp_directory is not None:
-        config["temp_directory"] = str(temp_directory)
+    # DuckDB spills to `.tmp` in the current folder by default: use the system's temp folder
+    # instead, so that a run never writes beside the user's files (nor into a read-only folder)
+    config["temp_directory"] = str(temp_directory if temp_directory is not None else Path(tempfile.gettempdir()) / "dka-cohort-spill")
     try:
         con = duckdb.connect(":memory:", config=config)
     except duckdb.Error as error:
