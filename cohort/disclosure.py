@@ -15,13 +15,14 @@ default threshold of 10 is a common choice of research data services, configurab
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 
 import polars as pl
 
 from cohort._errors import DisclosureError
 
-__all__ = ["DEFAULT_THRESHOLD", "SECONDARY_LABEL", "suppress_counts", "suppressed_label"]
+__all__ = ["DEFAULT_THRESHOLD", "SECONDARY_LABEL", "is_small", "suppress_cells", "suppress_counts", "suppressed_label"]
 
 DEFAULT_THRESHOLD = 10
 SECONDARY_LABEL = "withheld"
@@ -85,48 +86,82 @@ def suppress_counts(
     if missing:
         msg = f"suppress_counts: columns {missing} not in the table; it has {table.columns}"
         raise DisclosureError(msg)
-    groups = list(group_by) if group_by is not None else None
-    out = table.with_row_index("__row")
-    label = suppressed_label(threshold)
+    if group_by is None:
+        groups = [list(range(table.height))]
+    elif not group_by:
+        groups = []
+    else:
+        keyed = table.select(group_by).with_row_index("__row").group_by(list(group_by), maintain_order=True)
+        groups = keyed.agg(pl.col("__row"))["__row"].to_list()
+    out = table
+    hidden_labels = (suppressed_label(threshold), SECONDARY_LABEL)
     for column in count_columns:
-        values = out[column]
-        if values.null_count() == 0 and (values < 0).any():
+        values = table[column].to_list()
+        if any(value is not None and value < 0 for value in values):
             msg = f"suppress_counts: column `{column}` holds negative counts; counts must be >= 0"
             raise DisclosureError(msg)
-        primary = ((values >= 1) & (values < threshold)).fill_null(False)
-        flag = f"__hide_{column}"
-        out = out.with_columns(primary.alias(flag))
-        if groups is None or groups:
-            out = _secondary(out, column, flag, groups or [])
-        out = out.with_columns(
-            pl.when(primary)
-            .then(pl.lit(label))
-            .when(pl.col(flag))
-            .then(pl.lit(SECONDARY_LABEL))
-            .otherwise(pl.col(column).cast(pl.Int64).cast(pl.String))
-            .alias(column)
-        )
+        shown = [None if cell == "" else cell for cell in suppress_cells(values, groups, threshold=threshold)]
+        out = out.with_columns(pl.Series(column, shown, dtype=pl.String))
         for dependent, source in (dependent_columns or {}).items():
             if source == column:
                 out = out.with_columns(
-                    pl.when(pl.col(flag)).then(None).otherwise(pl.col(dependent)).alias(dependent)
+                    pl.when(pl.col(column).is_in(hidden_labels)).then(None).otherwise(pl.col(dependent)).alias(dependent)
                 )
-    return out.sort("__row").drop(["__row", *[c for c in out.columns if c.startswith("__hide_")]])
+    return out
 
 
-def _secondary(frame: pl.DataFrame, column: str, flag: str, groups: list[str]) -> pl.DataFrame:
-    """Hide the smallest other non-zero count of every group with exactly one hidden count."""
-    keys = groups or ["__all"]
-    work = frame.with_columns(pl.lit(0).alias("__all")) if not groups else frame
-    hidden_per_group = work.group_by(keys).agg(pl.col(flag).sum().alias("__hidden"))
-    work = work.join(hidden_per_group, on=keys, how="left")
-    candidates = (
-        work.filter((pl.col("__hidden") == 1) & ~pl.col(flag) & (pl.col(column) > 0))
-        .sort([*keys, column, "__row"])
-        .group_by(keys, maintain_order=True)
-        .first()
-        .select("__row")
-    )
-    extra = set(candidates["__row"].to_list())
-    result = work.with_columns((pl.col(flag) | pl.col("__row").is_in(list(extra))).alias(flag))
-    return result.drop([name for name in ("__hidden", "__all") if name in result.columns])
+def is_small(count: int | None, threshold: int) -> bool:
+    """True when ``count`` is from 1 to ``threshold - 1`` (a count to suppress).
+
+    Examples
+    --------
+    >>> is_small(3, 10), is_small(0, 10), is_small(10, 10)
+    (True, False, False)
+    """
+    return count is not None and 1 <= int(count) < threshold
+
+
+def suppress_cells(values: Sequence[int | None], groups: Sequence[Sequence[int]], *, threshold: int) -> list[str]:
+    """Suppress cells that belong to several additive groups (a row and a column of a two-way table).
+
+    Counts from 1 to ``threshold - 1`` become ``"<threshold"``; then, as long as some group holds
+    exactly one hidden cell, its smallest other non-zero cell is ``"withheld"`` (repeated until every
+    group has none or at least two hidden, so no hidden cell is a total less the others shown).
+
+    Parameters
+    ----------
+    values
+        The cells, flattened (``None`` for a missing cell, shown as ``""``).
+    groups
+        Each a list of indices into ``values`` whose sum is published or recoverable.
+
+    Examples
+    --------
+    >>> suppress_cells([40, 3, 48, 12], [[0, 1], [2, 3], [0, 2], [1, 3]], threshold=10)
+    ['withheld', '<10', 'withheld', 'withheld']
+    """
+    label = suppressed_label(threshold)
+    hidden = [is_small(v, threshold) for v in values]
+    primary = list(hidden)
+    changed = True
+    while changed:
+        changed = False
+        for group in groups:
+            inside = [i for i in group if hidden[i]]
+            if len(inside) != 1:
+                continue
+            others = [i for i in group if not hidden[i] and values[i] is not None and int(values[i]) > 0]
+            if others:
+                hidden[min(others, key=lambda i: (int(values[i]), i))] = True
+                changed = True
+    shown = []
+    for index, value in enumerate(values):
+        if value is None or (isinstance(value, float) and math.isnan(value)):
+            shown.append("")
+        elif primary[index]:
+            shown.append(label)
+        elif hidden[index]:
+            shown.append(SECONDARY_LABEL)
+        else:
+            shown.append(str(int(value)))
+    return shown

@@ -21,7 +21,8 @@ import polars as pl
 import pytest
 
 from cohort.report import check_disclosure, write_report
-from cohort.report._tables import calibration_table, model_table, rate_table, suppress_cells
+from cohort.disclosure import suppress_cells
+from cohort.report._tables import calibration_table, model_table, rate_table
 
 COX_COLUMNS = ("model", "term", "covariate", "reference", "coef", "se", "estimate", "lower", "upper", "p", "n",
                "events", "n_clusters", "ph_p", "left_out")

@@ -33,7 +33,7 @@ from collections.abc import Sequence
 
 import polars as pl
 
-from cohort.disclosure import SECONDARY_LABEL, suppress_counts, suppressed_label
+from cohort.disclosure import SECONDARY_LABEL, is_small, suppress_cells, suppress_counts, suppressed_label
 
 __all__ = [
     "attrition_table",
@@ -49,17 +49,6 @@ __all__ = [
     "show_count",
     "suppress_table",
 ]
-
-
-def is_small(count: int | None, threshold: int) -> bool:
-    """True when ``count`` is from 1 to ``threshold - 1`` (a count to suppress).
-
-    Examples
-    --------
-    >>> is_small(3, 10), is_small(0, 10), is_small(10, 10)
-    (True, False, False)
-    """
-    return count is not None and 1 <= int(count) < threshold
 
 
 def show_count(count: int | None, threshold: int) -> str:
@@ -231,52 +220,6 @@ def km_truncate(curve: pl.DataFrame, *, threshold: int, group: str = "group") ->
         .filter(~pl.col("_cut"))
         .drop("_cut")
     )
-
-
-def suppress_cells(values: Sequence[int | None], groups: Sequence[Sequence[int]], *, threshold: int) -> list[str]:
-    """Suppress cells that belong to several additive groups (a row and a column of a two-way table).
-
-    Counts from 1 to ``threshold - 1`` become ``"<threshold"``; then, as long as some group holds
-    exactly one hidden cell, its smallest other non-zero cell is ``"withheld"`` (repeated until every
-    group has none or at least two hidden, so no hidden cell is a total less the others shown).
-
-    Parameters
-    ----------
-    values
-        The cells, flattened (``None`` for a missing cell, shown as ``""``).
-    groups
-        Each a list of indices into ``values`` whose sum is published or recoverable.
-
-    Examples
-    --------
-    >>> suppress_cells([40, 3, 48, 12], [[0, 1], [2, 3], [0, 2], [1, 3]], threshold=10)
-    ['withheld', '<10', 'withheld', 'withheld']
-    """
-    label = suppressed_label(threshold)
-    hidden = [is_small(v, threshold) for v in values]
-    primary = list(hidden)
-    changed = True
-    while changed:
-        changed = False
-        for group in groups:
-            inside = [i for i in group if hidden[i]]
-            if len(inside) != 1:
-                continue
-            others = [i for i in group if not hidden[i] and values[i] is not None and int(values[i]) > 0]
-            if others:
-                hidden[min(others, key=lambda i: (int(values[i]), i))] = True
-                changed = True
-    shown = []
-    for index, value in enumerate(values):
-        if value is None or (isinstance(value, float) and math.isnan(value)):
-            shown.append("")
-        elif primary[index]:
-            shown.append(label)
-        elif hidden[index]:
-            shown.append(SECONDARY_LABEL)
-        else:
-            shown.append(str(int(value)))
-    return shown
 
 
 _NUMBER = re.compile(r"(?<![\w.])(\d+)(?![\w.])")
