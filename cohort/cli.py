@@ -397,6 +397,15 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         sys.stderr.write(f"{PROG}: interrupted\n")
         return 130
+    except Exception as exc:  # noqa: BLE001 - only the engine's own errors are turned into one line
+        if not type(exc).__module__.lstrip("_").startswith("duckdb"):
+            raise
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        sys.stderr.write(
+            f"{PROG}: error: the DuckDB engine stopped while working ({type(exc).__name__}: {first}). "
+            "If it names a file, that file may be damaged (re-export it); if it names memory or disk, "
+            "raise --memory-limit or free space in the temporary folder; no result was written.\n")
+        return 2
 
 
 if __name__ == "__main__":  # pragma: no cover

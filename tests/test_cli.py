@@ -68,3 +68,34 @@ def test_module_entry_point_runs_as_a_process() -> None:
     assert done.returncode == 2
     assert done.stderr.startswith("dka-cohort synth: error:")
     assert "Traceback" not in done.stderr
+
+
+def test_an_engine_error_during_heavy_work_is_one_line(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str], tmp_path
+) -> None:
+    # a Parquet file with a valid footer but damaged pages fails only when DuckDB reads the pages
+    import duckdb
+
+    import cohort.episodes
+
+    def damaged(*args: object, **kwargs: object) -> None:
+        raise duckdb.IOException("Could not read page 3 of file 'measurement.parquet'\nmore detail")
+
+    monkeypatch.setattr(cohort.episodes, "find_episodes", damaged)
+    code = main(["episodes", "--source", str(tmp_path), "--definition", "consensus-2024", "--out", str(tmp_path / "o")])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("\n") == 1, err
+    assert "measurement.parquet" in err and "IOException" in err
+    assert "Traceback" not in err
+
+
+def test_other_errors_are_not_hidden(monkeypatch: pytest.MonkeyPatch) -> None:
+    import cohort.episodes
+
+    def broken(*args: object, **kwargs: object) -> None:
+        raise ZeroDivisionError("a bug, not bad input")
+
+    monkeypatch.setattr(cohort.episodes, "find_episodes", broken)
+    with pytest.raises(ZeroDivisionError):
+        main(["episodes", "--source", "x", "--definition", "consensus-2024", "--out", "o"])
