@@ -31,6 +31,7 @@ _LAZY = {
     "LabSummary": "cohort._labs",
     "read_codelists": "cohort._codelists",
     "list_definitions": "cohort.definitions",
+    "definitions_dir": "cohort._paths",
     "load_definition": "cohort.definitions",
     "Definition": "cohort.definitions",
     "find_episodes": "cohort.episodes",

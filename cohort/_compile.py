@@ -172,7 +172,10 @@ def as_number(value: object) -> float:
                     else " (it was read as text: remove the quotes)"
                 )
         raise _fail(f"must be a number, got {_show(value)}{hint}")
-    number = float(value)
+    try:
+        number = float(value)
+    except OverflowError:  # an integer too large for a float (more than about 309 digits)
+        raise _fail(f"must be a finite number, got an integer of {len(str(abs(value)))} digits") from None
     if not math.isfinite(number):
         raise _fail(f"must be a finite number, got {_show(value)}")
     return number

@@ -4,19 +4,43 @@ A manifest lets a reader tell two runs apart and rerun one: every definition wit
 (of the canonical content after overrides, :meth:`cohort.definitions.Definition.sha256`), the
 source fingerprint (:meth:`cohort.source.Extract.fingerprint`), the versions of Python and the
 packages that shape results, the parameters given, and start and end times (UTC, ISO 8601).
+
+What a rerun needs is recorded too: each definition's full content after overrides
+(``definitions[i].content``), the SHA-256 of every code-list file used (``codelists``), and,
+added by :func:`write_manifest` from the folder it writes into, a content hash of every table in
+the output (``tables``): the SHA-256 of the table's rows in a canonical order (sorted on every
+column) with its column names and types, not of the file's bytes, so writer metadata, row
+groups and compression do not change it. :mod:`cohort.verify` reruns from this.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import hashlib
 import json
 import platform
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping, MutableMapping, Sequence
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 from typing import Any
 
-__all__ = ["MANIFEST_PACKAGES", "package_versions", "definition_entry", "build_manifest", "write_manifest", "utc_now"]
+__all__ = [
+    "MANIFEST_PACKAGES",
+    "package_versions",
+    "definition_entry",
+    "build_manifest",
+    "write_manifest",
+    "utc_now",
+    "table_hash",
+    "table_hashes",
+    "file_hashes",
+    "canonical_table",
+    "read_table",
+]
+
+#: File endings of the tables hashed in an output folder.
+TABLE_SUFFIXES: tuple[str, ...] = (".parquet", ".csv")
+_HASH_BATCH_ROWS = 250_000
 
 #: Packages whose versions go into every manifest.
 MANIFEST_PACKAGES: tuple[str, ...] = ("dka-cohort", "duckdb", "polars", "pyarrow", "pydantic", "pyyaml", "rich")
@@ -52,6 +76,7 @@ def definition_entry(definition: Any) -> dict[str, Any]:
         "origin": definition.origin,
         "sha256": definition.sha256(),
         "overrides": {key: _jsonable(value) for key, value in definition.overrides.items()},
+        "content": content,
         "citation": content.get("citation"),
         "population": content.get("population"),
         "timing": content.get("timing"),
@@ -113,10 +138,155 @@ def build_manifest(
         "parameters": _jsonable(dict(parameters)),
         "counts": _jsonable(dict(counts or {})),
         "seconds": {key: round(float(value), 3) for key, value in (seconds or {}).items()},
+        "codelists": _codelist_entry(parameters.get("codelists")),
     }
 
 
-def write_manifest(manifest: Mapping[str, Any], path: Path) -> Path:
-    """Write the manifest as indented, key-sorted JSON and return the path."""
+def _codelist_entry(folder: object) -> dict[str, Any]:
+    from cohort._paths import codelists_dir
+
+    path = Path(str(folder)) if folder else codelists_dir()
+    return {"folder": str(path) if folder else None, "bundled": not folder, "files": file_hashes(path, "*.csv")}
+
+
+def file_hashes(folder: Path, pattern: str = "*") -> dict[str, str]:
+    """Return ``{file name: SHA-256 of its bytes}`` for the files of ``folder`` matching ``pattern``.
+
+    Used for inputs (code lists), whose bytes are what was read; outputs are hashed by content
+    (:func:`table_hash`).
+    """
+    found: dict[str, str] = {}
+    if not Path(folder).is_dir():
+        return found
+    for path in sorted(Path(folder).glob(pattern)):
+        if path.is_file():
+            found[path.name] = hashlib.sha256(path.read_bytes()).hexdigest()
+    return found
+
+
+def read_table(path: Path) -> Any:
+    """Read an output table as polars: Parquet with its types, CSV as text cells (as written).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, polars as pl
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "t.csv"
+    >>> pl.DataFrame({"a": [1, 2]}).write_csv(path)
+    >>> read_table(path)["a"].to_list()
+    ['1', '2']
+    """
+    import polars as pl
+
+    path = Path(path)
+    if path.suffix == ".parquet":
+        return pl.read_parquet(path)
+    return pl.read_csv(path, infer_schema=False, raise_if_empty=False)
+
+
+def canonical_table(frame: Any) -> Any:
+    """Return ``frame`` in a canonical form: rows sorted on every column (nulls last).
+
+    Nested columns become JSON text, categoricals their text, durations their count of the time
+    unit and binary columns hex text, so that every column can be sorted and written as CSV.
+
+    Two tables holding the same rows in any order give equal canonical tables.
+    """
+    import polars as pl
+
+    columns = []
+    for name, dtype in frame.schema.items():
+        if dtype.is_nested():
+            columns.append(pl.struct(pl.col(name)).struct.json_encode().alias(name))
+        elif isinstance(dtype, (pl.Categorical, pl.Enum)):  # by value, not by dictionary order
+            columns.append(pl.col(name).cast(pl.String))
+        elif isinstance(dtype, pl.Duration):  # CSV has no durations: count of the time unit
+            columns.append(pl.col(name).cast(pl.Int64))
+        elif dtype == pl.Binary:
+            columns.append(pl.col(name).bin.encode("hex"))
+        else:
+            columns.append(pl.col(name))
+    canonical = frame.select(columns)
+    if canonical.width and canonical.height > 1:
+        canonical = canonical.sort(canonical.columns, nulls_last=True, maintain_order=True)
+    return canonical
+
+
+def table_hash(frame_or_path: Any) -> dict[str, Any]:
+    """Content hash of one table: rows, columns with types, and the SHA-256 of its canonical rows.
+
+    The hash covers the column names and types (in order) and every row, sorted on every column
+    and written as CSV text with ``\\N`` for null; it ignores row order, Parquet row groups,
+    compression and writer metadata.
+
+    Parameters
+    ----------
+    frame_or_path
+        A polars DataFrame, or the path of a ``.parquet`` or ``.csv`` file (read by :func:`read_table`).
+
+    Returns
+    -------
+    dict
+        ``{"sha256": ..., "rows": n, "columns": [...]}``.
+
+    Examples
+    --------
+    >>> import polars as pl
+    >>> one = table_hash(pl.DataFrame({"a": [1, 2], "b": ["x", None]}))
+    >>> two = table_hash(pl.DataFrame({"a": [2, 1], "b": [None, "x"]}))
+    >>> one == two, one["rows"]
+    (True, 2)
+    """
+    import io
+
+    frame = read_table(frame_or_path) if isinstance(frame_or_path, (str, Path)) else frame_or_path
+    canonical = canonical_table(frame)
+    digest = hashlib.sha256()
+    header = [f"{name}:{dtype}" for name, dtype in frame.schema.items()]
+    digest.update(("\x1f".join(header) + "\n").encode("utf-8"))
+    for chunk in canonical.iter_slices(_HASH_BATCH_ROWS):
+        buffer = io.BytesIO()
+        chunk.write_csv(buffer, include_header=False, null_value="\\N", datetime_format="%Y-%m-%dT%H:%M:%S%.f")
+        digest.update(buffer.getvalue())
+    return {"sha256": digest.hexdigest(), "rows": int(frame.height), "columns": list(frame.columns)}
+
+
+def table_hashes(folder: Path | str) -> dict[str, dict[str, Any]]:
+    """Content hashes of every table (``*.parquet``, ``*.csv``) under ``folder``, by relative path.
+
+    Hidden files and folders (a leading ``.``) are skipped.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, polars as pl
+    >>> folder = pathlib.Path(tempfile.mkdtemp())
+    >>> pl.DataFrame({"a": [1]}).write_parquet(folder / "t.parquet")
+    >>> list(table_hashes(folder))
+    ['t.parquet']
+    """
+    root = Path(folder)
+    found: dict[str, dict[str, Any]] = {}
+    for path in sorted(root.rglob("*")):
+        relative = path.relative_to(root)
+        if any(part.startswith(".") for part in relative.parts):
+            continue
+        if path.is_file() and path.suffix in TABLE_SUFFIXES:
+            found[relative.as_posix()] = table_hash(path)
+    return found
+
+
+def write_manifest(manifest: Mapping[str, Any], path: Path, *, hash_tables: bool = True) -> Path:
+    """Write the manifest as indented, key-sorted JSON and return the path.
+
+    With ``hash_tables`` (the default) the content hash of every table already in the manifest's
+    folder (:func:`table_hashes`) is added under ``tables``, in the mapping given too when it can
+    be changed. Write the manifest last: its presence marks the folder complete.
+    """
+    path = Path(path)
+    if hash_tables:
+        hashes = table_hashes(path.parent)
+        if isinstance(manifest, MutableMapping):
+            manifest["tables"] = hashes
+        else:
+            manifest = {**manifest, "tables": hashes}
     path.write_text(json.dumps(manifest, indent=2, sort_keys=True, allow_nan=False) + "\n", encoding="utf-8")
     return path

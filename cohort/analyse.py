@@ -11,6 +11,10 @@ resolution with death and discharge competing, cumulative incidence of first rec
 death competing) go to ``out/curves/``; summary tables to ``out``. The CSVs hold unsuppressed
 counts; they are working results for the secure environment. The
 report (``dka-cohort report``) applies disclosure control to everything it shows and exports.
+
+The folder is written whole or not at all (a staging folder under the lock ``<out>.lock``,
+:mod:`cohort._outputs`), with ``manifest.json`` last: the definition, the features read (with
+their content hashes) and the content hash of every result table.
 """
 
 from __future__ import annotations
@@ -140,7 +144,8 @@ def run_analyses(
     features
         The folder ``dka-cohort features`` wrote.
     out
-        Folder for the result CSVs (created; files in it are replaced).
+        Folder for the result CSVs: new, empty, or an earlier run's (replaced whole, only once
+        the new results are complete).
     definition
         Which definition's episodes to analyse.
 
@@ -157,9 +162,15 @@ def run_analyses(
     """
     from cohort import stats
 
+    from cohort._manifest import utc_now
+
     started = time.perf_counter()
+    started_at = utc_now()
+    from cohort._outputs import check_output_folder
+
     folder = Path(features)
     target = Path(out)
+    check_output_folder(target, markers=_ANALYSE_MARKERS)  # before any heavy work
     episodes = _read(folder, "episode_features", definition)
     if episodes.height == 0:
         found = pl.read_parquet(folder / "episode_features.parquet", columns=["definition"])["definition"].unique()
@@ -171,16 +182,15 @@ def run_analyses(
     counting = _read(folder, "counting_process", definition)
     person_time = _population_person_time(_read(folder, "person_time", definition), definition)
     persons = _read(folder, "person_summary", definition)
-    target.mkdir(parents=True, exist_ok=True)
     summary = AnalysisSummary(out=target, definition=definition)
+    # results are kept until every analysis has run, then written whole (see _write_results)
+    results: dict[str, tuple[str, pl.DataFrame]] = {}
 
     def save(name: str, frame: pl.DataFrame) -> None:
         # whole curves (one row per event time) go to curves/, summary tables beside it
-        folder = target / "curves" if name.startswith("curve_") else target
-        folder.mkdir(parents=True, exist_ok=True)
-        path = folder / f"{name.removeprefix('curve_')}.csv"
-        frame.with_columns(pl.lit(definition).alias("definition")).write_csv(path)
-        summary.written[name] = path
+        relative = f"curves/{name.removeprefix('curve_')}.csv" if name.startswith("curve_") else f"{name}.csv"
+        results[name] = (relative, frame.with_columns(pl.lit(definition).alias("definition")))
+        summary.written[name] = target / relative
 
     def attempt(name: str, work: Callable[[], dict[str, pl.DataFrame]]) -> None:
         try:
@@ -313,16 +323,73 @@ def run_analyses(
         attempt(name, work)
 
     summary.seconds = time.perf_counter() - started
-    (target / "analyses.json").write_text(
-        json.dumps(
-            {
-                "definition": definition,
-                "written": sorted(summary.written),
-                "skipped": summary.skipped,
-                "seconds": round(summary.seconds, 3),
-            },
-            indent=2,
-        ),
-        encoding="utf-8",
-    )
+    _write_results(target, folder, definition, results, summary, started_at)
     return summary
+
+
+def _write_results(
+    target: Path,
+    features: Path,
+    definition: str,
+    results: dict[str, tuple[str, pl.DataFrame]],
+    summary: AnalysisSummary,
+    started_at: str,
+) -> None:
+    """Write the result CSVs, analyses.json and manifest.json into ``target`` whole, under its lock.
+
+    The files go to a staging folder beside ``target`` that replaces it only when every file is
+    written (:func:`cohort._outputs.output_folder`); manifest.json, written last, records the
+    definition, the features folder and the content hash of each feature table read (so
+    :func:`cohort.verify.verify_results` can rerun and check the inputs), and the content hash of
+    every result table.
+    """
+    from cohort._manifest import package_versions, utc_now, write_manifest
+    from cohort._outputs import output_folder
+
+    inputs = {
+        name: table_hashes_of(features / f"{name}.parquet")
+        for name in ("episode_features", "counting_process", "person_time", "person_summary")
+    }
+    with output_folder(target, command="analyse", markers=_ANALYSE_MARKERS) as staging:
+        for relative, frame in results.values():
+            path = staging / relative
+            path.parent.mkdir(parents=True, exist_ok=True)
+            frame.write_csv(path)
+        (staging / "analyses.json").write_text(
+            json.dumps(
+                {
+                    "definition": definition,
+                    "written": sorted(summary.written),
+                    "skipped": summary.skipped,
+                    "seconds": round(summary.seconds, 3),
+                },
+                indent=2,
+            ),
+            encoding="utf-8",
+        )
+        manifest = {
+            "tool": "dka-cohort",
+            "command": "analyse",
+            "started": started_at,
+            "finished": utc_now(),
+            "definition": definition,
+            "features": str(features.resolve()),
+            "features_tables": inputs,
+            "packages": package_versions((*_ANALYSE_PACKAGES,)),
+            "parameters": {"definition": definition},
+            "skipped": dict(summary.skipped),
+        }
+        write_manifest(manifest, staging / "manifest.json")
+
+
+def table_hashes_of(path: Path) -> dict[str, object] | None:
+    """Content hash of one input table (:func:`cohort._manifest.table_hash`), None if it is absent."""
+    from cohort._manifest import table_hash
+
+    return table_hash(path) if path.is_file() else None
+
+
+#: Files that mark a complete statistics folder (an earlier run's folder is replaced whole).
+_ANALYSE_MARKERS = ("manifest.json", "analyses.json")
+#: Packages whose versions shape the statistics (recorded in the manifest).
+_ANALYSE_PACKAGES = ("dka-cohort", "polars", "numpy", "scipy", "pandas", "lifelines", "statsmodels", "scikit-learn")

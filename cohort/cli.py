@@ -161,6 +161,20 @@ def _cmd_check_disclosure(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_verify(args: argparse.Namespace) -> int:
+    from cohort.verify import verify_results
+
+    report = verify_results(
+        Path(args.results),
+        Path(args.source),
+        threads=args.threads,
+        memory_limit=args.memory_limit,
+        keep=Path(args.keep) if args.keep else None,
+    )
+    print("\n".join(report.lines()))
+    return report.exit_code
+
+
 def _cmd_sql(args: argparse.Namespace) -> int:
     from cohort.definitions import load_definition
     from cohort.engines import sql_command
@@ -171,6 +185,7 @@ def _cmd_sql(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
+    from cohort._outputs import output_folder
     from cohort.analyse import run_analyses
     from cohort.definitions import list_definitions
     from cohort.episodes import find_episodes
@@ -178,29 +193,32 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from cohort.report import write_report
     from cohort.source import open_extract
 
-    out = Path(args.out)
+    out = Path(args.out).expanduser().absolute()
     started = time.perf_counter()
 
     def lap(label: str) -> None:
         if not args.quiet:
             print(f"[{time.perf_counter() - started:6.1f} s] {label}")
 
-    summary = _synth(args)
-    lap(f"synthetic extract: {summary.persons:,} persons, {summary.measurement_rows:,} measurement rows")
-    with open_extract(summary.extract_dir) as extract:  # one session: lab events are prepared once
-        result = find_episodes(extract, list_definitions(), out=out / "episodes", progress=False)
-        counts = result.episodes.group_by("definition").len().sort("definition")
-        lap("episodes: " + ", ".join(f"{name} {count:,}" for name, count in counts.iter_rows()))
-        tables = run_features(result.episodes, extract, out / "features")
-        lap(f"features: {tables.episode_features.height:,} episode rows")
-    analysed = run_analyses(out / "features", out / "stats", definition=args.definition)
-    lap(f"statistics ({analysed.definition}): {len(analysed.written)} tables, {len(analysed.skipped)} not run")
-    report = write_report(out, out / "report.html")
-    lap("report written")
-    print(f"demo extract:  {summary.extract_dir}")
-    print(f"ground truth:  {summary.truth_dir}")
-    print(f"results:       {out.resolve()}/episodes, features, stats")
-    print(f"report:        {report.out_file.resolve()}")
+    # the whole demo folder is staged beside OUT under OUT.lock and moved into place when the
+    # report is written; an earlier demo folder (it holds report.html) is replaced only then
+    with output_folder(out, command="demo", markers=("report.html",)) as staging:
+        summary = _synth(argparse.Namespace(**{**vars(args), "out": str(staging), "force": True}))
+        lap(f"synthetic extract: {summary.persons:,} persons, {summary.measurement_rows:,} measurement rows")
+        with open_extract(summary.extract_dir) as extract:  # one session: lab events are prepared once
+            result = find_episodes(extract, list_definitions(), out=staging / "episodes", progress=False)
+            counts = result.episodes.group_by("definition").len().sort("definition")
+            lap("episodes: " + ", ".join(f"{name} {count:,}" for name, count in counts.iter_rows()))
+            tables = run_features(result.episodes, extract, staging / "features")
+            lap(f"features: {tables.episode_features.height:,} episode rows")
+        analysed = run_analyses(staging / "features", staging / "stats", definition=args.definition)
+        lap(f"statistics ({analysed.definition}): {len(analysed.written)} tables, {len(analysed.skipped)} not run")
+        write_report(staging, staging / "report.html")
+        lap("report written")
+    print(f"demo extract:  {out / summary.extract_dir.name}")
+    print(f"ground truth:  {out / summary.truth_dir.name}")
+    print(f"results:       {out}/episodes, features, stats")
+    print(f"report:        {out / 'report.html'}")
     print(f"demo finished in {time.perf_counter() - started:.1f} s")
     return 0
 
@@ -347,6 +365,21 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("path", metavar="FILE_OR_DIR", help="what to scan")
     check.add_argument("--threshold", type=_positive_int, default=10, help="smallest count allowed (default 10)")
     check.set_defaults(func=_cmd_check_disclosure)
+
+    verify = sub.add_parser(
+        "verify",
+        help="rerun a results folder from its manifest and report any table that differs",
+        description=(
+            "Rerun the episodes, features and statistics recorded in RESULTS_DIR's manifests on the "
+            "extract given, then compare every table by content hash: same, different (with the first "
+            "differing row) or missing. Exit 0 when identical, 1 when anything differs, 2 on error."
+        ),
+    )
+    verify.add_argument("results", metavar="RESULTS_DIR", help="a stage folder (episodes/, features/, stats/) or the folder holding them")
+    verify.add_argument("--source", required=True, help="the extract the results were made from")
+    verify.add_argument("--keep", help="keep the rerun in this new or empty folder (default: a temporary folder, removed)")
+    _add_engine_options(verify)
+    verify.set_defaults(func=_cmd_verify)
 
     sql = sub.add_parser(
         "sql",

@@ -29,8 +29,10 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError,
 from pydantic_core import PydanticCustomError
 
 from cohort._compile import (
+    _MAX_DEPTH,
     Criterion,
     Severity,
+    _check_tree,
     _fail,
     _show,
     analytes_used,
@@ -63,6 +65,12 @@ BICARBONATE_SPECIMENS: tuple[str, ...] = ("serum", "blood", "arterial", "venous"
 """Bicarbonate specimens a definition may accept (``total_co2`` = total CO2 reported as bicarbonate)."""
 
 _NAME = re.compile(r"^[a-z0-9][a-z0-9.-]{0,63}$")
+
+# Bounds on the raw content, checked before validation (which recurses): the bundled files hold a
+# few hundred values and nest about 15 containers deep; YAML anchors can make a short file expand
+# to millions of values, and a deeply nested one would exhaust Python's recursion limit.
+_MAX_NESTING = 64
+_MAX_VALUES = 20_000
 
 
 class _Strict(BaseModel):
@@ -433,6 +441,10 @@ def _read_yaml(path: Path) -> Any:
         raise DefinitionError(msg) from None
     try:
         return yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader subclass
+    except RecursionError:
+        msg = (f"definition file {path}: nests too deeply to read (thousands of levels); criteria may nest "
+               f"at most {_MAX_DEPTH} levels")
+        raise DefinitionError(msg) from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None) or getattr(exc, "context_mark", None)
         where = f"{path}:{mark.line + 1}:{mark.column + 1}" if mark else str(path)
@@ -511,8 +523,8 @@ def parse_override(text: str) -> tuple[str, object]:
         raise DefinitionError(msg)
     try:
         parsed = yaml.safe_load(value) if value.strip() else None
-    except yaml.YAMLError:
-        msg = f"override {key.strip()!r}: the value {value!r} could not be read as a number, word or [list]"
+    except (yaml.YAMLError, RecursionError):
+        msg = f"override {key.strip()!r}: the value {_show(value)} could not be read as a number, word or [list]"
         raise DefinitionError(msg) from None
     return key.strip(), parsed
 
@@ -576,7 +588,9 @@ def parse_definition(
     if not isinstance(data, Mapping):
         msg = f"{label}: must be a mapping of fields (name, title, citation, ...), got {_show(data)}"
         raise DefinitionError(msg)
+    _check_size(data, label)
     content = _apply_overrides(dict(data), overrides or {}, label)
+    _check_size(content, label)
     try:
         definition = Definition.model_validate(content)
     except ValidationError as exc:
@@ -587,9 +601,43 @@ def parse_definition(
         error = DefinitionError("\n".join(messages))
         error.messages = messages  # type: ignore[attr-defined]
         raise error from None
+    # the criteria again as the compiler sees them (nesting depth, counts), so that every loaded
+    # definition compiles
+    trees = [("diagnosis", definition.diagnosis), ("resolution.when", definition.resolution.when)]
+    if definition.severity is not None:
+        trees += [(f"severity.grades[{i}].when", grade.when) for i, grade in enumerate(definition.severity.grades)]
+    for path, tree in trees:
+        _check_tree(tree, origin=label, path=path, depth=0)
     definition._origin = origin
     definition._overrides = dict(overrides or {})
     return definition
+
+
+def _check_size(data: object, label: str) -> None:
+    """Refuse content nesting deeper than ``_MAX_NESTING`` or holding more than ``_MAX_VALUES`` values."""
+    stack: list[tuple[object, str, int]] = [(data, "", 0)]
+    seen = 0
+    while stack:
+        value, path, depth = stack.pop()
+        seen += 1
+        if seen > _MAX_VALUES:
+            msg = (
+                f"{label}: holds more than {_MAX_VALUES:,} values (YAML anchors and aliases repeated "
+                "many times?); a definition needs a few hundred; write the criteria out plainly"
+            )
+            raise DefinitionError(msg)
+        if depth > _MAX_NESTING:
+            msg = (
+                f"{label}: `{path}` nests deeper than {_MAX_NESTING} levels; criteria may nest at most "
+                f"{_MAX_DEPTH} levels (all_of / any_of / at_least inside one another)"
+            )
+            raise DefinitionError(msg)
+        if isinstance(value, Mapping):
+            for key, item in value.items():
+                stack.append((item, f"{path}.{key}" if path else str(key), depth + 1))
+        elif isinstance(value, (list, tuple)):
+            for index, item in enumerate(value):
+                stack.append((item, f"{path}[{index}]", depth + 1))
 
 
 def load_definition(name_or_path: str | Path, *, overrides: Mapping[str, object] | None = None) -> Definition:

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -108,13 +106,33 @@ OUTPUT_FILES = {
 }
 
 
+#: Files that mark a complete features folder (an earlier run's folder is replaced whole).
+_FEATURE_MARKERS = ("features_manifest.json", "episode_features.parquet")
+
+
+def _write_tables(tables: FeatureTables, folder: Path) -> dict[str, Path]:
+    """Write every feature table into ``folder`` (a staging folder) and return name -> path."""
+    written: dict[str, Path] = {}
+    for name, file_name in OUTPUT_FILES.items():
+        frame: pl.DataFrame = getattr(tables, name)
+        target = folder / file_name
+        if file_name.endswith(".parquet"):
+            frame.write_parquet(target)
+        else:
+            frame.write_csv(target, datetime_format="%Y-%m-%d %H:%M:%S")
+        written[name] = target
+    return written
+
+
 def write_features(tables: FeatureTables, out: Path | str) -> dict[str, Path]:
     """Write the feature tables under ``out``.
 
     Files: episode_features.parquet, person_summary.parquet, person_time.parquet,
     counting_process.parquet,
-    unlinked_infusions.parquet, audit_summary.csv, data_dictionary.csv. Each file is written to
-    a temporary name in ``out`` and renamed into place, so a reader never sees half a file.
+    unlinked_infusions.parquet, audit_summary.csv, data_dictionary.csv. They are written into a
+    staging folder beside ``out`` under the lock ``<out>.lock`` and moved into place together
+    when all are complete (:func:`cohort._outputs.output_folder`), so a reader never sees half a
+    folder. ``out`` must be new, empty, or an earlier features folder (replaced whole).
 
     Returns
     -------
@@ -123,36 +141,20 @@ def write_features(tables: FeatureTables, out: Path | str) -> dict[str, Path]:
 
     Examples
     --------
-    >>> import datetime as dt, tempfile, polars as pl
+    >>> import datetime as dt, tempfile, pathlib, polars as pl
     >>> episodes = pl.DataFrame({"episode_id": ["e1"], "person_id": [1], "definition": ["jbds-2023"],
     ...     "onset_datetime": [dt.datetime(2024, 3, 1, 9)], "end_datetime": [dt.datetime(2024, 3, 1, 21)]})
-    >>> written = write_features(build_features(episodes, FeatureInputs()), tempfile.mkdtemp())
+    >>> out = pathlib.Path(tempfile.mkdtemp()) / "features"
+    >>> written = write_features(build_features(episodes, FeatureInputs()), out)
     >>> sorted(written)[:3]
     ['audit_summary', 'counting_process', 'data_dictionary']
     """
+    from cohort._outputs import output_folder
+
     folder = Path(out)
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as error:
-        msg = f"cannot create the features folder {folder}: {error.strerror}; give a writable --out"
-        raise InputError(msg) from None
-    written: dict[str, Path] = {}
-    for name, file_name in OUTPUT_FILES.items():
-        frame: pl.DataFrame = getattr(tables, name)
-        target = folder / file_name
-        handle, temporary = tempfile.mkstemp(prefix=f".{file_name}.", dir=folder)
-        os.close(handle)
-        try:
-            if file_name.endswith(".parquet"):
-                frame.write_parquet(temporary)
-            else:
-                frame.write_csv(temporary, datetime_format="%Y-%m-%d %H:%M:%S")
-            os.replace(temporary, target)
-        finally:
-            if os.path.exists(temporary):
-                os.unlink(temporary)
-        written[name] = target
-    return written
+    with output_folder(folder, command="features", markers=_FEATURE_MARKERS) as staging:
+        written = _write_tables(tables, staging)
+    return {name: folder / path.name for name, path in written.items()}
 
 
 def run_features(
@@ -175,8 +177,10 @@ def run_features(
         The extract: a path for :func:`cohort.source.open_extract`, or an open ``Extract`` (then
         it is left open, and lab events already prepared in its session are reused).
     out
-        Folder to write the tables to (:func:`write_features`) with ``features_manifest.json``
-        (options, row counts, times, source digest); nothing is written when None.
+        Folder to write the tables to with ``features_manifest.json`` (options, row counts,
+        times, the source fingerprint, the content hash of the episodes read and of every table
+        written); written whole or not at all, under a lock (:func:`write_features`). Nothing is
+        written when None.
     options
         Feature options; defaults when None.
     threads, memory_limit
@@ -193,14 +197,17 @@ def run_features(
     >>> tables.episode_features.height  # doctest: +SKIP
     1203
     """
-    import datetime as dt
     import json
     from dataclasses import asdict
 
+    from cohort._manifest import package_versions, table_hash, table_hashes, utc_now
+    from cohort._outputs import check_output_folder, output_folder
     from cohort.features._loader import load_feature_inputs
     from cohort.source import Extract, open_extract
 
-    started = dt.datetime.now()
+    started = utc_now()
+    if out is not None:
+        check_output_folder(out, markers=_FEATURE_MARKERS)  # before any heavy work
     if isinstance(episodes, pl.DataFrame):
         frame, episodes_path = episodes, None
     else:
@@ -217,31 +224,33 @@ def run_features(
     options = options or FeatureOptions()
     if isinstance(source, Extract):
         inputs = load_feature_inputs(source, frame, options=options)
-        digest = None
+        fingerprint = source.fingerprint() if out is not None else None
     else:
         with open_extract(source, threads=threads, memory_limit=memory_limit) as extract:
             inputs = load_feature_inputs(extract, frame, options=options)
-            digest = extract.fingerprint().get("digest")
+            fingerprint = extract.fingerprint() if out is not None else None
     tables = build_features(frame, inputs, options=options)
     if out is not None:
-        written = write_features(tables, out)
-        from importlib.metadata import PackageNotFoundError, version
-
-        try:
-            package_version = version("dka-cohort")
-        except PackageNotFoundError:  # a bare source tree has no installed metadata
-            package_version = "0.0.0"
-        manifest = {
-            "stage": "features",
-            "package_version": package_version,
-            "polars_version": pl.__version__,
-            "episodes": str(episodes_path) if episodes_path else None,
-            "source_digest": digest,
-            "options": asdict(options),
-            "rows": {name: getattr(tables, name).height for name in OUTPUT_FILES},
-            "files": {name: path.name for name, path in written.items()},
-            "started": started.isoformat(timespec="seconds"),
-            "finished": dt.datetime.now().isoformat(timespec="seconds"),
-        }
-        (Path(out) / "features_manifest.json").write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
+        with output_folder(Path(out), command="features", markers=_FEATURE_MARKERS) as staging:
+            written = _write_tables(tables, staging)
+            manifest = {
+                "stage": "features",
+                "command": "features",
+                "package_version": package_versions().get("dka-cohort") or "0.0.0",
+                "polars_version": pl.__version__,
+                "packages": package_versions(),
+                "episodes": str(episodes_path.resolve()) if episodes_path else None,
+                "episodes_table": table_hash(frame),
+                "source": fingerprint,
+                "source_digest": (fingerprint or {}).get("digest"),
+                "options": asdict(options),
+                "parameters": {"threads": threads, "memory_limit": memory_limit},
+                "rows": {name: getattr(tables, name).height for name in OUTPUT_FILES},
+                "files": {name: path.name for name, path in written.items()},
+                "tables": table_hashes(staging),
+                "started": started,
+                "finished": utc_now(),
+            }
+            text = json.dumps(manifest, indent=2, sort_keys=True, default=str) + "\n"
+            (staging / "features_manifest.json").write_text(text, encoding="utf-8")
     return tables

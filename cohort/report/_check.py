@@ -6,8 +6,8 @@ What counts as a breach (the rule of :mod:`cohort.disclosure`):
   ``n``, ``events``, ``at_risk``, ``numerator``, ``denominator``, ``*_count``, ...; see
   :data:`COUNT_COLUMN_PATTERN`) holding a whole number from 1 to ``threshold - 1``.
 - ``recoverable``: a count column with exactly one suppressed cell and no ``withheld`` cell, in a
-  table that has a total row (first cell ``total`` or ``all``): the suppressed count is the total
-  less the others.
+  table that has a total row (first cell ``total`` or ``all``) and at least one other row: the
+  suppressed count is the total less the others.
 - ``person_identifier``: a column of person-level identifiers (``person_id``, ``episode_id``,
   ``visit_occurrence_id``, ``person_source_value``, ...).
 - ``exact_date``: a cell holding a calendar date (``YYYY-MM-DD``) in a table, or a column named
@@ -122,7 +122,7 @@ def scan_table(
                 value = _whole(cell)
                 if value is not None and 1 <= value < threshold:
                     found.append(Violation(path, table, number, column, cell, "small_count"))
-        if is_count and has_total:
+        if is_count and has_total and len(rows) > 1:  # a lone row (the total itself) has nothing to subtract
             suppressed = [number for number, cell in enumerate(cells, start=1) if cell.strip() == label]
             withheld = any(cell.strip() == SECONDARY_LABEL for cell in cells)
             if len(suppressed) == 1 and not withheld:

@@ -23,9 +23,6 @@ import datetime as dt
 import html
 import json
 import math
-import os
-import shutil
-import tempfile
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -40,7 +37,8 @@ import polars as pl
 from markupsafe import Markup
 
 from cohort._errors import CohortError, DisclosureError, InputError
-from cohort.disclosure import DEFAULT_THRESHOLD, SECONDARY_LABEL, suppress_counts, suppressed_label
+from cohort._outputs import output_file
+from cohort.disclosure import DEFAULT_THRESHOLD, SECONDARY_LABEL, suppress_cells, suppress_counts, suppressed_label
 from cohort.report import _charts as charts
 from cohort.report._check import COUNT_COLUMN_PATTERN, IDENTIFIER_COLUMNS, Violation, check_disclosure
 from cohort.report._control import p_chart
@@ -364,8 +362,7 @@ def _definitions_section(build: _Builder, results_dir: Path) -> _Section | None:
     if agreement is None:
         build.skip("Agreement between definitions", "no agreement.csv in the results")
     else:
-        count_columns = [c for c in agreement.columns if COUNT_COLUMN_PATTERN.fullmatch(c)]
-        shown = _suppress_rows(agreement, count_columns, build.threshold)
+        shown = _suppress_agreement(agreement, build.threshold)
         section.blocks.append(_h3("Agreement"))
         section.blocks.append(build.table(shown, "agreement", "Agreement between each pair of finders (episodes "
                                           "overlapping in time; visits; Cohen's kappa at visit level)"))
@@ -385,6 +382,63 @@ def _suppress_rows(frame: pl.DataFrame, count_columns: Sequence[str], threshold:
     wide = hidden.pivot(on="_column", index="_row", values="_count")
     rest = indexed.drop(list(count_columns))
     return rest.join(wide, on="_row", how="left").sort("_row").select(frame.columns)
+
+
+#: The sums inside one row of agreement.csv (``cohort._agreement``): each total is published
+#: beside its parts, so a hidden part must not be the total less the parts shown.
+AGREEMENT_SUMS: tuple[tuple[str, ...], ...] = (
+    ("episodes_a", "both", "only_a"),
+    ("episodes_b", "both_b", "only_b"),
+    ("visits", "visits_both", "visits_only_a", "visits_only_b", "visits_neither"),
+)
+
+#: Statistics computed from the visit cells: withheld when any of those cells is hidden, since
+#: with the total a statistic is one more equation for the hidden cells.
+AGREEMENT_DERIVED: tuple[str, ...] = ("kappa",)
+
+
+def _suppress_agreement(frame: pl.DataFrame, threshold: int) -> pl.DataFrame:
+    """Suppress agreement.csv counts so that no hidden cell follows from a row's published sums.
+
+    Each row's cells are protected per additive group of :data:`AGREEMENT_SUMS` (a total and its
+    parts), with secondary suppression inside each group (:func:`cohort.disclosure.suppress_cells`);
+    Cohen's kappa is withheld in a row whose visit cells are hidden. Counts in columns outside the
+    groups are suppressed one by one. Columns a table does not have are skipped.
+
+    Examples
+    --------
+    >>> row = pl.DataFrame({"definition_a": ["a"], "definition_b": ["b"], "episodes_a": [167],
+    ...                     "episodes_b": [200], "both": [163], "both_b": [163], "only_a": [4],
+    ...                     "only_b": [37]})
+    >>> shown = _suppress_agreement(row, 10)
+    >>> shown.select("episodes_a", "both", "only_a").row(0)
+    ('167', 'withheld', '<10')
+    """
+    count_columns = [c for c in frame.columns if COUNT_COLUMN_PATTERN.fullmatch(c)]
+    if not count_columns or frame.height == 0:
+        return frame
+    groups_by_name = [[c for c in group if c in count_columns] for group in AGREEMENT_SUMS]
+    groups_by_name = [group for group in groups_by_name if group]
+    position = {column: index for index, column in enumerate(count_columns)}
+    groups = [[position[c] for c in group] for group in groups_by_name]
+    grouped = {c for group in groups_by_name for c in group}
+    groups += [[position[c]] for c in count_columns if c not in grouped]
+    hidden_labels = (suppressed_label(threshold), SECONDARY_LABEL)
+    visit_cells = [c for c in AGREEMENT_SUMS[2] if c in count_columns]
+    rows: list[dict[str, object]] = []
+    for record in frame.iter_rows(named=True):
+        values = [None if record[c] is None else int(record[c]) for c in count_columns]
+        shown = suppress_cells(values, groups, threshold=threshold)
+        out = dict(record)
+        for column, cell in zip(count_columns, shown):
+            out[column] = None if cell == "" else cell
+        if any(out[c] in hidden_labels for c in visit_cells):
+            for derived in AGREEMENT_DERIVED:
+                if derived in out:
+                    out[derived] = None
+        rows.append(out)
+    schema = {c: (pl.String if c in count_columns else frame.schema[c]) for c in frame.columns}
+    return pl.DataFrame(rows, schema=schema, orient="row").select(frame.columns)
 
 
 def _criteria_cards(build: _Builder, names: Sequence[str]) -> Markup:
@@ -638,7 +692,10 @@ def _funnel_blocks(build: _Builder, frame: pl.DataFrame, column: str, meets: boo
     for row, raw in zip(shown.iter_rows(named=True), counts.iter_rows(named=True), strict=True):
         positions.append(None if row["share"] is None else funnel_position(raw["numerator"], raw["denominator"], target))
     shown = shown.with_columns(pl.Series("position", positions, dtype=pl.String))
-    plotted = shown.filter(pl.col("share").is_not_null())
+    # a hospital is plotted only when its share and its denominator are both shown (a denominator
+    # can be withheld by secondary suppression while the share is not)
+    plotted = shown.filter(pl.col("share").is_not_null()
+                           & pl.col("denominator").cast(pl.String).str.contains(r"^[0-9]+$"))
     if plotted.is_empty():
         build.skip("Funnel plot", "every hospital's share is withheld by disclosure control")
         return []
@@ -796,7 +853,8 @@ def write_report(results_dir: Path | str, out_file: Path | str, *, threshold: in
     results_dir
         Folder holding the results (``episodes/``, ``features/``, ``stats/`` subfolders, or flat).
     out_file
-        The HTML file to write. The tables go to ``<stem>-tables/`` beside it.
+        The HTML file to write. The tables go to ``<stem>-tables/`` beside it. Both are staged
+        beside it under the lock ``<out>.lock`` and replace earlier ones only when complete.
     threshold
         Disclosure threshold: counts from 1 to ``threshold - 1`` are suppressed.
 
@@ -845,9 +903,10 @@ def write_report(results_dir: Path | str, out_file: Path | str, *, threshold: in
         stylesheet=Markup(stylesheet), plotly_js=Markup(_plotly_js()), methods=methods,
         footer=f"Made by dka-cohort. Tables behind this report: {tables_name}/ (CSV).",
     )
-    out.parent.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{out.stem}-", dir=out.parent))
-    try:
+    tables_dir = out.parent / tables_name
+    # staged beside the file under the lock <out>.lock; the tables folder, then the page, replace
+    # the earlier ones only when both are written and pass the disclosure check (cohort._outputs)
+    with output_file(out, command="report", beside=(tables_name,)) as staging:
         staged_html = staging / out.name
         staged_html.write_text(page, encoding="utf-8")
         staged_tables = staging / tables_name
@@ -860,13 +919,6 @@ def write_report(results_dir: Path | str, out_file: Path | str, *, threshold: in
             msg = (f"the report would break the disclosure rule in {len(violations)} place(s), nothing was written: "
                    f"{listed}. Raise the level of aggregation or report this as a bug.")
             raise DisclosureError(msg)
-        tables_dir = out.parent / tables_name
-        if tables_dir.exists():
-            shutil.rmtree(tables_dir)
-        os.replace(staged_tables, tables_dir)
-        os.replace(staged_html, out)
-    finally:
-        shutil.rmtree(staging, ignore_errors=True)
     return ReportSummary(
         out_file=out, tables_dir=tables_dir, sections=tuple(s.title for s in sections),
         skipped=tuple(build.skipped), charts=build.chart_count,

@@ -367,7 +367,8 @@ def suppress_table(frame: pl.DataFrame, counts: Sequence[str], *, threshold: int
     Each count column is one group (its cells may add up to a total shown elsewhere). Where both
     ``n`` and ``events`` are counts, ``n_without_event`` (n - events) is added and each row's n,
     events and n - events are a group too, so that a small number without the event (censored,
-    non-events) cannot be recovered by subtraction. Every other numeric figure of a row with a
+    non-events) cannot be recovered by subtraction (a count column already equal to n - events in
+    every row, such as ``censored``, takes that place). Every other numeric figure of a row with a
     hidden count is withheld; small numbers inside free text (``left_out``, ``warning``, ``note``)
     are masked.
 
@@ -382,9 +383,19 @@ def suppress_table(frame: pl.DataFrame, counts: Sequence[str], *, threshold: int
     columns = list(counts)
     paired = "n" in columns and "events" in columns and bool(
         (work["n"].fill_null(0).cast(pl.Int64) >= work["events"].fill_null(0).cast(pl.Int64)).all())
+    complement = "n_without_event"
     if paired:
-        work = work.with_columns((pl.col("n").cast(pl.Int64) - pl.col("events").cast(pl.Int64)).alias("n_without_event"))
-        columns.append("n_without_event")
+        difference = work["n"].cast(pl.Int64) - work["events"].cast(pl.Int64)
+        # a column already holding n - events in every row (e.g. `censored` of a Kaplan-Meier
+        # median table) is the third member of the group; otherwise n - events is added
+        for column in columns:
+            if column not in ("n", "events") and work[column].null_count() == 0 and bool(
+                    (work[column].cast(pl.Int64) == difference).all()):
+                complement = column
+                break
+        else:
+            work = work.with_columns(difference.alias(complement))
+            columns.append(complement)
     if not columns:
         return work
     width = len(columns)
@@ -393,7 +404,7 @@ def suppress_table(frame: pl.DataFrame, counts: Sequence[str], *, threshold: int
         values.extend(None if v is None else int(v) for v in row)
     groups = [list(range(c, len(values), width)) for c in range(width)]
     if paired:
-        trio = [columns.index("n"), columns.index("events"), columns.index("n_without_event")]
+        trio = [columns.index("n"), columns.index("events"), columns.index(complement)]
         groups += [[r * width + i for i in trio] for r in range(work.height)]
     shown = suppress_cells(values, groups, threshold=threshold)
     out = work.with_columns(*[pl.Series(c, shown[i::width], dtype=pl.String) for i, c in enumerate(columns)])
