@@ -28,3 +28,7 @@ class DisclosureError(CohortError):
 
 class InputError(CohortError):
     """A command-line argument or function argument is invalid (bad number, unwritable folder)."""
+
+
+class ExtractWarning(UserWarning):
+    """The extract can be read but something in it deserves a look (an empty measurement table)."""

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+import warnings
 import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -417,13 +418,24 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _note(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+          file: object = None, line: str | None = None) -> None:
+    if category.__module__.startswith("cohort"):
+        sys.stderr.write(f"{PROG}: note: {message}\n")
+    else:
+        sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the ``dka-cohort`` command; return its exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
     func: Callable[[argparse.Namespace], int] = args.func
     try:
-        return func(args)
+        with warnings.catch_warnings():
+            # our own warnings (an empty table, a stale lock taken over) are one-line notes
+            warnings.showwarning = _note
+            return func(args)
     except CohortError as exc:
         sys.stderr.write(f"{PROG}: error: {exc}\n")
         return 2

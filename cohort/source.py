@@ -53,6 +53,7 @@ import hashlib
 import json
 import re
 import tempfile
+import warnings as _warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -60,7 +61,7 @@ from typing import Any
 import duckdb
 
 from cohort._cdm import CDM_TABLES, KIND_SQL_TYPE, OPTIONAL_TABLES, REQUIRED_TABLES, CdmColumn
-from cohort._errors import InputError, SchemaError
+from cohort._errors import ExtractWarning, InputError, SchemaError
 
 __all__ = ["Extract", "open_extract", "FORMATS"]
 
@@ -851,6 +852,8 @@ def open_extract(
     except BaseException:
         con.close()
         raise
+    for sentence in warnings:  # also on Extract.warnings; the command line shows them as notes
+        _warnings.warn(sentence, ExtractWarning, stacklevel=2)
     return Extract(where, chosen if base == "duckdb" and schema != "main" else base, con, sources,
                    tuple(warnings))
 

@@ -39,7 +39,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from cohort._errors import CohortError, InputError, SchemaError
+from cohort._errors import CohortError, ExtractWarning, InputError, SchemaError
 from cohort._labs import DATA_QUALITY_REASONS, prepare_lab_events
 from cohort.cli import main
 from cohort.source import open_extract
@@ -785,13 +785,27 @@ def test_empty_measurement_table_is_read_with_a_warning(fmt: str, tmp_path: Path
     tables = dict(_clean_tables())
     _empty("measurement")(tables)
     path = _write(tables, _extract_path(tmp_path, fmt), fmt)
-    with open_extract(path) as extract:
-        assert extract.warnings == (
-            "table `measurement` has no rows: no lab result can be read, so no lab-based episode "
-            "can be found",)
+    sentence = ("table `measurement` has no rows: no lab result can be read, so no lab-based episode "
+                "can be found")
+    with pytest.warns(ExtractWarning, match="has no rows"), open_extract(path) as extract:
+        assert extract.warnings == (sentence,)
         summary = prepare_lab_events(extract)
     assert (summary.rows_read, summary.rows_used, summary.rows_quarantined) == (0, 0, 0)
     assert summary.reconciles
+
+
+@pytest.mark.parametrize("fmt", ["parquet"])
+def test_empty_measurement_table_is_a_note_on_the_command_line(
+        fmt: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    tables = dict(_clean_tables())
+    _empty("measurement")(tables)
+    path = _write(tables, _extract_path(tmp_path, fmt), fmt)
+    code = main(["episodes", "--source", str(path), "--definition", "consensus-2024",
+                     "--out", str(tmp_path / "out"), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 0
+    assert "dka-cohort: note: table `measurement` has no rows" in err
+    assert "Traceback" not in err and "UserWarning" not in err
 
 
 @pytest.mark.parametrize("fmt", FORMATS)
