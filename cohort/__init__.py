@@ -42,6 +42,7 @@ _LAZY = {
     "FeatureOptions": "cohort.features",
     "data_dictionary": "cohort.features",
     "run_analyses": "cohort.analyse",
+    "with_death_in_follow_up": "cohort.analyse",
     "write_report": "cohort.report",
     "check_disclosure": "cohort.report",
     "suppress_counts": "cohort.disclosure",

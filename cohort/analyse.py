@@ -29,7 +29,7 @@ import polars as pl
 
 from cohort._errors import CohortError, InputError
 
-__all__ = ["AnalysisSummary", "run_analyses"]
+__all__ = ["AnalysisSummary", "run_analyses", "with_death_in_follow_up"]
 
 #: Covariates of the resolution and recurrence models (episode features contract names).
 RESOLUTION_COVARIATES = ("severity", "age_at_onset", "sex", "diabetes_type", "is_sglt2i_at_onset", "hba1c_mmol_mol")
@@ -129,6 +129,41 @@ def _cif_at(cif: pl.DataFrame, hours: tuple[float, ...]) -> pl.DataFrame:
                 {"cause": cause, "hours": at, "estimate": row["estimate"], "lower": row.get("lower"), "upper": row.get("upper")}
             )
     return pl.DataFrame(rows)
+
+
+def with_death_in_follow_up(episodes: pl.DataFrame, persons: pl.DataFrame) -> pl.DataFrame:
+    """Add ``died_in_follow_up``: the person's death date falls on or before the follow-up end.
+
+    The competing event of time to first recurrence (a person who died can no longer recur).
+
+    Parameters
+    ----------
+    episodes
+        Episode features with ``person_id`` and ``follow_up_end_datetime``.
+    persons
+        The person summary of the feature stage (``person_id``, ``death_date``).
+
+    Returns
+    -------
+    polars.DataFrame
+        ``episodes`` with ``death_date`` and the boolean ``died_in_follow_up``.
+
+    Examples
+    --------
+    >>> import datetime as dt
+    >>> episodes = pl.DataFrame({"person_id": [1, 2], "follow_up_end_datetime": [
+    ...     dt.datetime(2024, 3, 1), dt.datetime(2024, 3, 1)]})
+    >>> persons = pl.DataFrame({"person_id": [1, 2], "death_date": [dt.date(2024, 2, 1), None]})
+    >>> with_death_in_follow_up(episodes, persons)["died_in_follow_up"].to_list()
+    [True, False]
+    """
+    death = persons.select("person_id", "death_date").unique("person_id")
+    return episodes.join(death, on="person_id", how="left").with_columns(
+        (
+            pl.col("death_date").is_not_null()
+            & (pl.col("death_date").cast(pl.Datetime("us")) <= pl.col("follow_up_end_datetime"))
+        ).alias("died_in_follow_up")
+    )
 
 
 def run_analyses(
@@ -247,13 +282,7 @@ def run_analyses(
         data = resolution.filter(pl.all_horizontal([pl.col(name).is_not_null() for name in covariates]))
         return {"resolution_cox": stats.cox_model(data, covariates=covariates, reference={"severity": "mild"})}
 
-    death = persons.select("person_id", "death_date").unique("person_id")
-    with_death = episodes.join(death, on="person_id", how="left").with_columns(
-        (
-            pl.col("death_date").is_not_null()
-            & (pl.col("death_date").cast(pl.Datetime("us")) <= pl.col("follow_up_end_datetime"))
-        ).alias("died_in_follow_up")
-    )
+    with_death = with_death_in_follow_up(episodes, persons)
 
     def first_recurrence() -> dict[str, pl.DataFrame]:
         result = stats.time_to_first_recurrence(with_death, death_col="died_in_follow_up")
