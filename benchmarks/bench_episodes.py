@@ -10,10 +10,14 @@ so nothing is skipped; the ratio step / scan is printed.
 Targets (issue 3): on the 1,000,000-person extract, 60 s and 4 GB on 2 cores, and within 3 times
 the bare scan.
 
+With ``--before DIR`` (a copy of an earlier source tree) each run is made twice, first with the
+earlier tree and then with this one, and printed side by side (one line each, same settings, the
+same bare scan), so a change is measured in one run of the benchmark.
+
 Usage::
 
     python benchmarks/bench_episodes.py --extract DIR/extract [--threads 2] [--memory-limit 4GB]
-        [--definition consensus-2024 ...] [--no-all]
+        [--definition consensus-2024 ...] [--no-all] [--before OLD_TREE]
 """
 
 from __future__ import annotations
@@ -24,7 +28,6 @@ import os
 import subprocess
 import sys
 import tempfile
-import time
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -35,10 +38,11 @@ _CHILD = r"""
 import json, sys, time
 sys.path.insert(0, {root!r})
 from cohort.episodes import find_episodes
-started = time.perf_counter()
+started, cpu = time.perf_counter(), time.process_time()
 result = find_episodes({extract!r}, {definitions!r}, threads={threads!r}, memory_limit={memory!r})
-seconds = time.perf_counter() - started
-print(json.dumps({{"seconds": seconds, "episodes": result.episodes.height, "steps": result.manifest["seconds"]}}))
+seconds, cpu = time.perf_counter() - started, time.process_time() - cpu
+print(json.dumps({{"seconds": seconds, "cpu": cpu, "episodes": result.episodes.height,
+                  "steps": result.manifest["seconds"]}}))
 """
 
 _SCAN = r"""
@@ -82,6 +86,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--definition", action="append", dest="definitions",
                         help="definition to time alone (repeatable; default all four)")
     parser.add_argument("--no-all", action="store_true", help="skip the run with all definitions together")
+    parser.add_argument("--before", type=Path, default=None,
+                        help="an earlier source tree to run first, for a before/after comparison")
     args = parser.parse_args(argv)
     extract = str(args.extract.resolve())
     settings = {"root": str(ROOT), "extract": extract, "threads": args.threads, "memory": args.memory_limit}
@@ -94,16 +100,21 @@ def main(argv: Sequence[str] | None = None) -> int:
     runs = [[name] for name in (args.definitions or DEFINITIONS)]
     if not args.no_all:
         runs.append(list(DEFINITIONS))
-    print(f"{'definitions':<58}{'seconds':>9}{'peak GiB':>10}{'x scan':>8}{'episodes':>10}")
+    trees = [("", str(ROOT))]
+    if args.before is not None:
+        trees = [("before: ", str(args.before.resolve())), ("after:  ", str(ROOT))]
+    print(f"load average before the runs: {os.getloadavg()[0]:.1f} (cpu s: CPU time of the child, all threads)")
+    print(f"{'definitions':<58}{'seconds':>9}{'cpu s':>8}{'peak GiB':>10}{'x scan':>8}{'episodes':>10}")
     for names in runs:
-        started = time.perf_counter()
-        found, rss = _run(_CHILD.format(definitions=names, **settings))
-        _ = time.perf_counter() - started
-        label = ", ".join(names)
-        print(f"{label:<58}{found['seconds']:>9.2f}{rss:>10.2f}{found['seconds'] / scan['seconds']:>8.1f}"
-              f"{found['episodes']:>10,}")
-        steps = ", ".join(f"{key} {value:.1f}" for key, value in found["steps"].items() if value >= 0.05)
-        print(f"    steps (s): {steps}")
+        for prefix, root in trees:
+            found, rss = _run(_CHILD.format(definitions=names, **{**settings, "root": root}))
+            label = prefix + ", ".join(names)
+            print(f"{label:<58}{found['seconds']:>9.2f}{found['cpu']:>8.1f}{rss:>10.2f}"
+                  f"{found['seconds'] / scan['seconds']:>8.1f}"
+                  f"{found['episodes']:>10,}")
+            steps = ", ".join(f"{key} {value:.0f}" if key.endswith("_steps") else f"{key} {value:.1f}"
+                              for key, value in found["steps"].items() if value >= 0.05)
+            print(f"    steps (s; 44_steps is a count of loop steps): {steps}")
     return 0
 
 

@@ -25,13 +25,17 @@ comparison of the diagnostic criteria is relaxed to the person's extreme value (
 ``max(x) >= v``, ``x < v`` to ``min(x) < v``), the anion gap to true (a derived gap is not known
 before the state) and known diabetes to "has a diabetes record". The grammar has no negation, so
 whoever meets the criteria at some time point passes the screen; the screen removes no episode.
+
+Work skipped because it cannot change an episode (each argument is in the recipe or function):
+the lab state carries only the analytes some criterion or the onset contract reads
+(:func:`carried_analytes`; the rows stay the same); visits and censoring are found only for
+candidates that can be onsets (``sql/42``); and between steps the episode loop narrows the
+tables ``sql/44`` reads to the persons still followed and their later rows
+(:func:`_narrow_pending`), restoring the full tables at the end.
 """
 
 from __future__ import annotations
 
-import os
-import shutil
-import tempfile
 import time
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -39,13 +43,24 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import duckdb
 import polars as pl
 
 from cohort._agreement import agreement_table
-from cohort._compile import AllOf, AnyOf, AtLeast, Compare, Flag, compile_criterion, compile_severity
+from cohort._compile import (
+    AllOf,
+    AnyOf,
+    AtLeast,
+    Compare,
+    Flag,
+    Severity,
+    compile_criterion,
+    compile_severity,
+)
 from cohort._errors import CohortError, DefinitionError, InputError
 from cohort._labs import prepare_lab_events
 from cohort._manifest import build_manifest, utc_now, write_manifest
+from cohort._outputs import check_output_folder, output_folder
 from cohort._sql import Fragment, run_recipe
 from cohort.definitions import Definition, load_definition, parse_definition
 from cohort.source import Extract, open_extract
@@ -54,6 +69,8 @@ __all__ = [
     "CODE_FINDER",
     "EPISODE_COLUMNS",
     "STATE_ANALYTES",
+    "ONSET_ANALYTES",
+    "carried_analytes",
     "EpisodeResult",
     "find_episodes",
     "screen_fragment",
@@ -69,6 +86,11 @@ CODE_FINDER = "dka-codes"
 STATE_ANALYTES: tuple[str, ...] = (
     "glucose", "ph", "bicarbonate", "bhb", "urine_ketones", "sodium", "chloride", "potassium",
     "anion_gap", "anion_gap_with_k", "hba1c", "creatinine",
+)
+
+#: Analytes whose value at onset the episodes contract reports (read from ``dx_<analyte>`` by sql/40).
+ONSET_ANALYTES: tuple[str, ...] = (
+    "glucose", "ph", "bicarbonate", "bhb", "urine_ketones", "potassium", "anion_gap",
 )
 
 #: Columns of episodes.parquet, in order: the DESIGN.md contract first, then the extras.
@@ -213,14 +235,65 @@ def _state_key(definition: Definition) -> tuple[Any, ...]:
             timing.anion_gap_pairing_minutes, tuple(timing.ph_specimens), tuple(timing.bicarbonate_specimens))
 
 
-def _state_slots(definition: Definition) -> dict[str, Any]:
-    timing = definition.timing
+def _named_analytes(node: Any) -> set[str]:
+    """Every analyte a criterion tree (or a severity, a list of grades) compares."""
+    if isinstance(node, Compare):
+        return {node.analyte}
+    if isinstance(node, AllOf):
+        children: Sequence[Any] = node.all_of
+    elif isinstance(node, AnyOf):
+        children = node.any_of
+    elif isinstance(node, AtLeast):
+        children = node.of
+    elif isinstance(node, Severity):
+        children = [grade.when for grade in node.grades]
+    else:  # a flag, or no severity
+        return set()
+    named: set[str] = set()
+    for child in children:
+        named |= _named_analytes(child)
+    return named
+
+
+def carried_analytes(definitions: Definition | Sequence[Definition]) -> tuple[str, ...]:
+    """The analytes the lab state carries for these definitions, in :data:`STATE_ANALYTES` order.
+
+    Always those the episode contract reports at onset (:data:`ONSET_ANALYTES`: glucose, pH,
+    bicarbonate, beta-hydroxybutyrate, anion gap, urine ketones, potassium) with the sodium and
+    chloride the derived anion gap is formed from; then every analyte a diagnosis, severity or
+    resolution criterion names (``anion_gap_with_k`` brings potassium, sodium, chloride and
+    bicarbonate). The other columns of ``dka_lab_state`` stay null: no recipe reads them. For the
+    bundled definitions (none names HbA1c, creatinine or the gap with potassium) this skips 3 of
+    the 12 running counts and joins and one of the two derived gaps.
+
+    Examples
+    --------
+    >>> from cohort.definitions import load_definition
+    >>> carried_analytes(load_definition("consensus-2024"))
+    ('glucose', 'ph', 'bicarbonate', 'bhb', 'urine_ketones', 'sodium', 'chloride', 'potassium', 'anion_gap')
+    """
+    items = [definitions] if isinstance(definitions, Definition) else list(definitions)
+    wanted = set(ONSET_ANALYTES) | {"sodium", "chloride"}
+    for definition in items:
+        wanted |= _named_analytes(definition.diagnosis)
+        wanted |= _named_analytes(definition.severity)
+        wanted |= _named_analytes(definition.resolution.when)
+    if "anion_gap_with_k" in wanted:
+        wanted |= {"sodium", "chloride", "potassium", "bicarbonate"}
+    return tuple(analyte for analyte in STATE_ANALYTES if analyte in wanted)
+
+
+def _state_slots(definitions: Definition | Sequence[Definition]) -> dict[str, Any]:
+    """Slots of ``sql/31``: the timing of the first definition, the analytes of all of them."""
+    first = definitions if isinstance(definitions, Definition) else definitions[0]
+    timing = first.timing
     return {
         "diagnosis_lookback_hours": float(timing.diagnosis_lookback_hours),
         "resolution_lookback_hours": float(timing.resolution_lookback_hours),
         "anion_gap_pairing_minutes": float(timing.anion_gap_pairing_minutes),
         "ph_specimens": tuple(timing.ph_specimens),
         "bicarbonate_specimens": tuple(timing.bicarbonate_specimens),
+        "state_analytes": carried_analytes(definitions),
     }
 
 
@@ -256,10 +329,51 @@ def build_lab_state(con: Any, definitions: Sequence[Definition], *, screen: bool
         msg = ("build_lab_state: the definitions differ in look-backs, anion gap pairing or specimens; "
                "build one lab state per group (find_episodes does this)")
         raise InputError(msg)
-    slots: dict[str, Any] = _state_slots(definitions[0])
+    slots: dict[str, Any] = _state_slots(list(definitions))
     slots["person_screen"] = screen_fragment([d.diagnosis for d in definitions]) if screen else Fragment("true")
     run_recipe(con, "31_lab_state.sql", "dka_lab_state", slots)
     return _count(con, "select count(*) from dka_lab_state")
+
+
+#: The tables sql/44 reads that the episode loop narrows between steps, with their time column.
+_PENDING: tuple[tuple[str, str], ...] = (
+    ("dka_onset_context", "onset_datetime"),
+    ("dka_resolution_candidates", "state_datetime"),
+)
+
+
+def _narrow_pending(con: Any, *, first: bool) -> None:
+    """Keep, in the tables ``sql/44`` reads, only rows later than a followed person's cutoff.
+
+    Exact: a step picks an onset strictly after the person's cutoff and a resolution strictly
+    after that onset, and only for persons in ``dka_episode_cutoff``; every row dropped here is
+    a row no later step could pick. Before the first narrowing the recipe's full tables are
+    renamed to ``<table>_full`` (:func:`_restore_pending` puts them back), so the session ends
+    with the same tables the recipes made. Each step then reads the persons still followed and
+    their later rows only, instead of every candidate of every person: most persons have one
+    episode, and at 1,000,000 persons the loop runs 13 steps.
+    """
+    for table, column in _PENDING:
+        if first:
+            con.execute(f"alter table {table} rename to {table}_full")
+        source = f"{table}_full" if first else table
+        con.execute(
+            f"create or replace temp table {table}_narrowed as select {source}.* from {source} "
+            f"inner join dka_episode_cutoff on dka_episode_cutoff.person_id = {source}.person_id "
+            f"where {source}.{column} > dka_episode_cutoff.cutoff_datetime"
+        )
+        if not first:
+            con.execute(f"drop table {table}")
+        con.execute(f"alter table {table}_narrowed rename to {table}")
+
+
+def _restore_pending(con: Any) -> None:
+    """Put back the full tables :func:`_narrow_pending` set aside (also after it failed midway)."""
+    for table, _ in _PENDING:
+        con.execute(f"drop table if exists {table}_narrowed")
+        if _count(con, f"select count(*) from duckdb_tables() where table_name = '{table}_full'"):
+            con.execute(f"drop table if exists {table}")
+            con.execute(f"alter table {table}_full rename to {table}")
 
 
 def episodes_in_session(
@@ -326,24 +440,37 @@ def episodes_in_session(
         "from dka_onset_context"
     )
     steps = 0
-    while True:
-        run("44_episode_step.sql", "dka_episode_next")
-        if steps == 0:
-            con.execute("create or replace temp table dka_episode_chain as select * from dka_episode_next")
-        found = _count(con, "select count(*) from dka_episode_next")
-        if found == 0:
-            break
-        if steps > 0:
-            con.execute("insert into dka_episode_chain select * from dka_episode_next")
-        con.execute(
-            "create or replace temp table dka_episode_cutoff as select person_id, "
-            "episode_number + 1 as episode_number, next_cutoff_datetime as cutoff_datetime "
-            "from dka_episode_next"
-        )
-        steps += 1
-        if steps > _MAX_EPISODE_STEPS:  # pragma: no cover - a person with 100,000 episodes
-            msg = f"definition `{name}`: more than {_MAX_EPISODE_STEPS} episodes for one person; check the gap"
-            raise CohortError(msg)
+    narrowed = False
+    followed_at_narrowing: int | None = None
+    try:
+        while True:
+            run("44_episode_step.sql", "dka_episode_next")
+            if steps == 0:
+                con.execute("create or replace temp table dka_episode_chain as select * from dka_episode_next")
+            found = _count(con, "select count(*) from dka_episode_next")
+            if found == 0:
+                break
+            if steps > 0:
+                con.execute("insert into dka_episode_chain select * from dka_episode_next")
+            con.execute(
+                "create or replace temp table dka_episode_cutoff as select person_id, "
+                "episode_number + 1 as episode_number, next_cutoff_datetime as cutoff_datetime "
+                "from dka_episode_next"
+            )
+            if followed_at_narrowing is None or 2 * found <= followed_at_narrowing:
+                # narrowing costs a pass over the pending rows; it pays once half the persons are settled
+                started = time.perf_counter()
+                first, narrowed = not narrowed, True
+                _narrow_pending(con, first=first)
+                followed_at_narrowing = found
+                timings["44_narrow"] = timings.get("44_narrow", 0.0) + time.perf_counter() - started
+            steps += 1
+            if steps > _MAX_EPISODE_STEPS:  # pragma: no cover - a person with 100,000 episodes
+                msg = f"definition `{name}`: more than {_MAX_EPISODE_STEPS} episodes for one person; check the gap"
+                raise CohortError(msg)
+    finally:
+        if narrowed:
+            _restore_pending(con)
     timings["44_steps"] = float(steps + 1)
     run("45_episode_rebound.sql", "dka_episode_rebound")
     run("46_episodes.sql", "dka_episodes")
@@ -438,40 +565,6 @@ class _Steps:
             self._progress.stop()
 
 
-# --------------------------------------------------------------------------- output folder
-def _check_out(out: Path) -> Path:
-    out = Path(out).expanduser().resolve()
-    if out.exists():
-        if not out.is_dir():
-            msg = f"--out {out} is a file; give a folder (it will hold episodes.parquet, manifest.json, ...)"
-            raise InputError(msg)
-        entries = list(out.iterdir())
-        if entries and not (out / "manifest.json").is_file():
-            msg = (f"--out {out} is a folder with other files in it and no manifest.json of an earlier run; "
-                   "give an empty or new folder (an earlier run's folder is replaced)")
-            raise InputError(msg)
-    try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        msg = f"--out {out}: cannot create its parent folder ({exc.strerror or exc})"
-        raise InputError(msg) from None
-    if not os.access(out.parent, os.W_OK):
-        msg = f"--out {out}: the folder {out.parent} is not writable"
-        raise InputError(msg)
-    return out
-
-
-def _replace_folder(staging: Path, out: Path) -> None:
-    """Move ``staging`` to ``out``; an earlier run's folder is moved aside first, then removed."""
-    previous = None
-    if out.exists():
-        previous = out.parent / f".{out.name}.previous-{os.getpid()}-{time.time_ns()}"
-        out.rename(previous)
-    staging.rename(out)
-    if previous is not None:
-        shutil.rmtree(previous, ignore_errors=True)
-
-
 # --------------------------------------------------------------------------- entry point
 def _load(definitions: Sequence[str | Path | Definition], overrides: Mapping[str, object] | None) -> list[Definition]:
     if isinstance(definitions, (str, Path, Definition)):
@@ -555,7 +648,7 @@ def find_episodes(
     started_at = utc_now()
     started = time.perf_counter()
     loaded = _load(definitions, overrides)
-    target = _check_out(out) if out is not None else None
+    target = check_output_folder(out) if out is not None else None
     groups: dict[tuple[Any, ...], list[Definition]] = {}
     for definition in loaded:
         groups.setdefault(_state_key(definition), []).append(definition)
@@ -566,7 +659,10 @@ def find_episodes(
         with steps.step("open", "opening the extract"):
             extract = open_extract(source, threads=threads, memory_limit=memory_limit) if opened else source
             con = extract.con
-            con.execute("set enable_progress_bar = false")  # progress, when asked, is shown by rich
+            try:  # progress, when asked, is shown by rich
+                con.execute("set enable_progress_bar = false")
+            except duckdb.InvalidInputException:  # inside Jupyter without ipywidgets; it is off there
+                pass
             if not opened:
                 if threads is not None:
                     con.execute(f"set threads = {int(threads)}")
@@ -642,30 +738,24 @@ def find_episodes(
                 "episodes": {name: int(frame.height) for name, frame in finders.items()},
             }
             if target is not None:
-                with steps.step("write", "writing outputs"):
-                    staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=target.parent))
-                    staging.chmod(0o755)  # mkdtemp makes it private; the results are an ordinary folder
-                    try:
-                        episodes.write_parquet(staging / "episodes.parquet")
-                        attrition.write_csv(staging / "attrition.csv")
-                        con.execute(
-                            "copy (select source_table, source_row_id, person_id, reason, detail from dka_quarantine "
-                            "order by source_table, source_row_id) to ? (format parquet)",
-                            [str(staging / "quarantine.parquet")],
-                        )
-                        summary.data_quality.write_csv(staging / "data_quality.csv")
-                        agreement.write_csv(staging / "agreement.csv")
-                        codes.write_parquet(staging / "code_episodes.parquet")
-                        manifest = build_manifest(
-                            command="episodes", definitions=loaded, source=fingerprint, parameters=parameters,
-                            started=started_at, finished=utc_now(), counts=counts,
-                            seconds={**steps.seconds, "total": time.perf_counter() - started},
-                        )
-                        write_manifest(manifest, staging / "manifest.json")
-                        _replace_folder(staging, target)
-                    except BaseException:
-                        shutil.rmtree(staging, ignore_errors=True)
-                        raise
+                # staged beside target under the lock <target>.lock, moved into place when complete
+                with steps.step("write", "writing outputs"), output_folder(target, command="episodes") as staging:
+                    episodes.write_parquet(staging / "episodes.parquet")
+                    attrition.write_csv(staging / "attrition.csv")
+                    con.execute(
+                        "copy (select source_table, source_row_id, person_id, reason, detail from dka_quarantine "
+                        "order by source_table, source_row_id) to ? (format parquet)",
+                        [str(staging / "quarantine.parquet")],
+                    )
+                    summary.data_quality.write_csv(staging / "data_quality.csv")
+                    agreement.write_csv(staging / "agreement.csv")
+                    codes.write_parquet(staging / "code_episodes.parquet")
+                    manifest = build_manifest(
+                        command="episodes", definitions=loaded, source=fingerprint, parameters=parameters,
+                        started=started_at, finished=utc_now(), counts=counts,
+                        seconds={**steps.seconds, "total": time.perf_counter() - started},
+                    )
+                    write_manifest(manifest, staging / "manifest.json")  # last: it marks the folder complete
             else:
                 manifest = build_manifest(
                     command="episodes", definitions=loaded, source=fingerprint, parameters=parameters,

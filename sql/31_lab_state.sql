@@ -7,7 +7,8 @@
 -- slots:  diagnosis_lookback_hours, resolution_lookback_hours (float hours),
 --         anion_gap_pairing_minutes (float minutes), ph_specimens, bicarbonate_specimens (word
 --         lists), person_screen (a compiled boolean over the per-person extremes below; `true`
---         keeps everyone)
+--         keeps everyone), state_analytes (word list: the analytes carried, from
+--         cohort.episodes.carried_analytes; the columns of any other analyte stay null)
 --
 -- Rules (toolkit choices, common practice unless a source is named):
 -- * pH and bicarbonate count only from the accepted specimens; other analytes from any specimen.
@@ -33,6 +34,9 @@
 --   (person_id, <analyte>_count), which gives the same value without one sort per analyte
 --   (tests/test_lab_state.py checks the result against a plain-Python reference). The look-back
 --   is then checked on the value's time. No ASOF join, IGNORE NULLS or LATERAL.
+-- * state_analytes: an analyte not in the list is still a time point (the rows do not depend on
+--   the list) but gets no running count, no join and null columns. The test `'x' in (...)` is
+--   a constant, so each engine's planner drops the unused window aggregate and join.
 -- * person_screen drops persons who can never meet a diagnosis (a monotone relaxation of the
 --   diagnostic criteria over each person's extremes, built by cohort.episodes); it changes no row
 --   of a person kept.
@@ -109,18 +113,18 @@ time_points as (
         lab_events.person_id,
         lab_events.event_datetime as state_datetime,
         max(lab_events.visit_occurrence_id) as visit_occurrence_id,
-        max(case when lab_events.analyte = 'glucose' then lab_events.value end) as glucose,
-        min(case when lab_events.analyte = 'ph' then lab_events.value end) as ph,
-        min(case when lab_events.analyte = 'bicarbonate' then lab_events.value end) as bicarbonate,
-        max(case when lab_events.analyte = 'bhb' then lab_events.value end) as bhb,
-        max(case when lab_events.analyte = 'urine_ketones' then lab_events.value end) as urine_ketones,
-        avg(case when lab_events.analyte = 'sodium' then lab_events.value end) as sodium,
-        avg(case when lab_events.analyte = 'chloride' then lab_events.value end) as chloride,
-        avg(case when lab_events.analyte = 'potassium' then lab_events.value end) as potassium,
-        max(case when lab_events.analyte = 'anion_gap' then lab_events.value end) as anion_gap,
-        max(case when lab_events.analyte = 'anion_gap_with_k' then lab_events.value end) as anion_gap_with_k,
-        max(case when lab_events.analyte = 'hba1c' then lab_events.value end) as hba1c,
-        max(case when lab_events.analyte = 'creatinine' then lab_events.value end) as creatinine
+        case when 'glucose' in {{ state_analytes }} then max(case when lab_events.analyte = 'glucose' then lab_events.value end) end as glucose,
+        case when 'ph' in {{ state_analytes }} then min(case when lab_events.analyte = 'ph' then lab_events.value end) end as ph,
+        case when 'bicarbonate' in {{ state_analytes }} then min(case when lab_events.analyte = 'bicarbonate' then lab_events.value end) end as bicarbonate,
+        case when 'bhb' in {{ state_analytes }} then max(case when lab_events.analyte = 'bhb' then lab_events.value end) end as bhb,
+        case when 'urine_ketones' in {{ state_analytes }} then max(case when lab_events.analyte = 'urine_ketones' then lab_events.value end) end as urine_ketones,
+        case when 'sodium' in {{ state_analytes }} then avg(case when lab_events.analyte = 'sodium' then lab_events.value end) end as sodium,
+        case when 'chloride' in {{ state_analytes }} then avg(case when lab_events.analyte = 'chloride' then lab_events.value end) end as chloride,
+        case when 'potassium' in {{ state_analytes }} then avg(case when lab_events.analyte = 'potassium' then lab_events.value end) end as potassium,
+        case when 'anion_gap' in {{ state_analytes }} then max(case when lab_events.analyte = 'anion_gap' then lab_events.value end) end as anion_gap,
+        case when 'anion_gap_with_k' in {{ state_analytes }} then max(case when lab_events.analyte = 'anion_gap_with_k' then lab_events.value end) end as anion_gap_with_k,
+        case when 'hba1c' in {{ state_analytes }} then max(case when lab_events.analyte = 'hba1c' then lab_events.value end) end as hba1c,
+        case when 'creatinine' in {{ state_analytes }} then max(case when lab_events.analyte = 'creatinine' then lab_events.value end) end as creatinine
     from lab_events
     inner join screened_persons
         on screened_persons.person_id = lab_events.person_id
@@ -144,18 +148,18 @@ counted as (
         time_points.anion_gap_with_k,
         time_points.hba1c,
         time_points.creatinine,
-        count(time_points.glucose) over person_time as glucose_count,
-        count(time_points.ph) over person_time as ph_count,
-        count(time_points.bicarbonate) over person_time as bicarbonate_count,
-        count(time_points.bhb) over person_time as bhb_count,
-        count(time_points.urine_ketones) over person_time as urine_ketones_count,
-        count(time_points.sodium) over person_time as sodium_count,
-        count(time_points.chloride) over person_time as chloride_count,
-        count(time_points.potassium) over person_time as potassium_count,
-        count(time_points.anion_gap) over person_time as anion_gap_count,
-        count(time_points.anion_gap_with_k) over person_time as anion_gap_with_k_count,
-        count(time_points.hba1c) over person_time as hba1c_count,
-        count(time_points.creatinine) over person_time as creatinine_count
+        case when 'glucose' in {{ state_analytes }} then count(time_points.glucose) over person_time end as glucose_count,
+        case when 'ph' in {{ state_analytes }} then count(time_points.ph) over person_time end as ph_count,
+        case when 'bicarbonate' in {{ state_analytes }} then count(time_points.bicarbonate) over person_time end as bicarbonate_count,
+        case when 'bhb' in {{ state_analytes }} then count(time_points.bhb) over person_time end as bhb_count,
+        case when 'urine_ketones' in {{ state_analytes }} then count(time_points.urine_ketones) over person_time end as urine_ketones_count,
+        case when 'sodium' in {{ state_analytes }} then count(time_points.sodium) over person_time end as sodium_count,
+        case when 'chloride' in {{ state_analytes }} then count(time_points.chloride) over person_time end as chloride_count,
+        case when 'potassium' in {{ state_analytes }} then count(time_points.potassium) over person_time end as potassium_count,
+        case when 'anion_gap' in {{ state_analytes }} then count(time_points.anion_gap) over person_time end as anion_gap_count,
+        case when 'anion_gap_with_k' in {{ state_analytes }} then count(time_points.anion_gap_with_k) over person_time end as anion_gap_with_k_count,
+        case when 'hba1c' in {{ state_analytes }} then count(time_points.hba1c) over person_time end as hba1c_count,
+        case when 'creatinine' in {{ state_analytes }} then count(time_points.creatinine) over person_time end as creatinine_count
     from time_points
     window person_time as (partition by time_points.person_id order by time_points.state_datetime)
 ),
@@ -167,7 +171,7 @@ glucose_values as (
         counted.glucose as glucose_value,
         counted.state_datetime as glucose_value_datetime
     from counted
-    where counted.glucose is not null
+    where counted.glucose is not null and 'glucose' in {{ state_analytes }}
 ),
 
 ph_values as (
@@ -177,7 +181,7 @@ ph_values as (
         counted.ph as ph_value,
         counted.state_datetime as ph_value_datetime
     from counted
-    where counted.ph is not null
+    where counted.ph is not null and 'ph' in {{ state_analytes }}
 ),
 
 bicarbonate_values as (
@@ -187,7 +191,7 @@ bicarbonate_values as (
         counted.bicarbonate as bicarbonate_value,
         counted.state_datetime as bicarbonate_value_datetime
     from counted
-    where counted.bicarbonate is not null
+    where counted.bicarbonate is not null and 'bicarbonate' in {{ state_analytes }}
 ),
 
 bhb_values as (
@@ -197,7 +201,7 @@ bhb_values as (
         counted.bhb as bhb_value,
         counted.state_datetime as bhb_value_datetime
     from counted
-    where counted.bhb is not null
+    where counted.bhb is not null and 'bhb' in {{ state_analytes }}
 ),
 
 urine_ketones_values as (
@@ -207,7 +211,7 @@ urine_ketones_values as (
         counted.urine_ketones as urine_ketones_value,
         counted.state_datetime as urine_ketones_value_datetime
     from counted
-    where counted.urine_ketones is not null
+    where counted.urine_ketones is not null and 'urine_ketones' in {{ state_analytes }}
 ),
 
 sodium_values as (
@@ -217,7 +221,7 @@ sodium_values as (
         counted.sodium as sodium_value,
         counted.state_datetime as sodium_value_datetime
     from counted
-    where counted.sodium is not null
+    where counted.sodium is not null and 'sodium' in {{ state_analytes }}
 ),
 
 chloride_values as (
@@ -227,7 +231,7 @@ chloride_values as (
         counted.chloride as chloride_value,
         counted.state_datetime as chloride_value_datetime
     from counted
-    where counted.chloride is not null
+    where counted.chloride is not null and 'chloride' in {{ state_analytes }}
 ),
 
 potassium_values as (
@@ -237,7 +241,7 @@ potassium_values as (
         counted.potassium as potassium_value,
         counted.state_datetime as potassium_value_datetime
     from counted
-    where counted.potassium is not null
+    where counted.potassium is not null and 'potassium' in {{ state_analytes }}
 ),
 
 anion_gap_values as (
@@ -247,7 +251,7 @@ anion_gap_values as (
         counted.anion_gap as anion_gap_value,
         counted.state_datetime as anion_gap_value_datetime
     from counted
-    where counted.anion_gap is not null
+    where counted.anion_gap is not null and 'anion_gap' in {{ state_analytes }}
 ),
 
 anion_gap_with_k_values as (
@@ -257,7 +261,7 @@ anion_gap_with_k_values as (
         counted.anion_gap_with_k as anion_gap_with_k_value,
         counted.state_datetime as anion_gap_with_k_value_datetime
     from counted
-    where counted.anion_gap_with_k is not null
+    where counted.anion_gap_with_k is not null and 'anion_gap_with_k' in {{ state_analytes }}
 ),
 
 hba1c_values as (
@@ -267,7 +271,7 @@ hba1c_values as (
         counted.hba1c as hba1c_value,
         counted.state_datetime as hba1c_value_datetime
     from counted
-    where counted.hba1c is not null
+    where counted.hba1c is not null and 'hba1c' in {{ state_analytes }}
 ),
 
 creatinine_values as (
@@ -277,7 +281,7 @@ creatinine_values as (
         counted.creatinine as creatinine_value,
         counted.state_datetime as creatinine_value_datetime
     from counted
-    where counted.creatinine is not null
+    where counted.creatinine is not null and 'creatinine' in {{ state_analytes }}
 ),
 
 carried as (
@@ -353,7 +357,8 @@ derived as (
         carried.person_id,
         carried.state_datetime,
         case
-            when carried.sodium_last is not null
+            when 'anion_gap' in {{ state_analytes }}
+                and carried.sodium_last is not null
                 and carried.chloride_last is not null
                 and carried.bicarbonate_last is not null
                 and greatest(carried.sodium_last_datetime, carried.chloride_last_datetime, carried.bicarbonate_last_datetime) <= least(carried.sodium_last_datetime, carried.chloride_last_datetime, carried.bicarbonate_last_datetime) + interval '1 minute' * {{ anion_gap_pairing_minutes }}
@@ -361,7 +366,8 @@ derived as (
                 then carried.sodium_last - (carried.chloride_last + carried.bicarbonate_last)
         end as anion_gap_derived,
         case
-            when carried.sodium_last is not null
+            when 'anion_gap_with_k' in {{ state_analytes }}
+                and carried.sodium_last is not null
                 and carried.potassium_last is not null
                 and carried.chloride_last is not null
                 and carried.bicarbonate_last is not null
@@ -378,8 +384,8 @@ derived_counted as (
         derived.state_datetime,
         derived.anion_gap_derived,
         derived.anion_gap_with_k_derived,
-        count(derived.anion_gap_derived) over person_time as anion_gap_derived_count,
-        count(derived.anion_gap_with_k_derived) over person_time as anion_gap_with_k_derived_count
+        case when 'anion_gap' in {{ state_analytes }} then count(derived.anion_gap_derived) over person_time end as anion_gap_derived_count,
+        case when 'anion_gap_with_k' in {{ state_analytes }} then count(derived.anion_gap_with_k_derived) over person_time end as anion_gap_with_k_derived_count
     from derived
     window person_time as (partition by derived.person_id order by derived.state_datetime)
 ),
@@ -391,7 +397,7 @@ anion_gap_derived_values as (
         derived_counted.anion_gap_derived as anion_gap_derived_value,
         derived_counted.state_datetime as anion_gap_derived_value_datetime
     from derived_counted
-    where derived_counted.anion_gap_derived is not null
+    where derived_counted.anion_gap_derived is not null and 'anion_gap' in {{ state_analytes }}
 ),
 
 anion_gap_with_k_derived_values as (
@@ -401,7 +407,7 @@ anion_gap_with_k_derived_values as (
         derived_counted.anion_gap_with_k_derived as anion_gap_with_k_derived_value,
         derived_counted.state_datetime as anion_gap_with_k_derived_value_datetime
     from derived_counted
-    where derived_counted.anion_gap_with_k_derived is not null
+    where derived_counted.anion_gap_with_k_derived is not null and 'anion_gap_with_k' in {{ state_analytes }}
 ),
 
 derived_carried as (

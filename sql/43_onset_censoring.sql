@@ -1,5 +1,6 @@
 -- 43_onset_censoring: where an episode starting at each onset candidate would be censored.
--- grain:  one row per (person_id, onset_datetime) of dka_onset_candidates
+-- grain:  one row per (person_id, onset_datetime) of dka_onset_visit (sql/42: the candidates that
+--         can be an onset)
 -- inputs: dka_onset_candidates (sql/40), dka_onset_visit (sql/42), dka_lab_state (sql/31),
 --         death (CDM), observation_period (CDM)
 -- output: dka_onset_context: the candidate's columns, its visit, and death_datetime,
@@ -34,6 +35,9 @@ candidates as (
         dka_onset_candidates.potassium_mmol_l,
         dka_onset_candidates.known_diabetes
     from dka_onset_candidates
+    inner join dka_onset_visit
+        on dka_onset_visit.person_id = dka_onset_candidates.person_id
+        and dka_onset_visit.onset_datetime = dka_onset_candidates.onset_datetime
 ),
 
 onset_visits as (

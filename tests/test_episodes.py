@@ -322,7 +322,7 @@ def test_refuses_a_folder_with_other_files(tmp_path):
     from cohort._errors import InputError
 
     (tmp_path / "notes.txt").write_text("mine")
-    with pytest.raises(InputError, match="other files"):
+    with pytest.raises(InputError, match=r"other file\(s\) \(notes.txt\)"):
         find_episodes(tmp_path / "missing-extract", ["consensus-2024"], out=tmp_path)
 
 
@@ -338,3 +338,60 @@ def test_unknown_definition_says_did_you_mean(tmp_path):
 
     with pytest.raises(DefinitionError, match="jbds-2023"):
         find_episodes(tmp_path, ["jbds-2032"])
+
+
+def test_episode_loop_narrowing_keeps_the_chain_and_restores_the_tables(tmp_path):
+    # The episode rules of the 2024 consensus definition (cohort/definitions/consensus-2024.yaml,
+    # Umpierrez et al., Diabetes Care 2024;47:1257-1275) with the toolkit's 72 h episode gap:
+    # person 1 has DKA on 10 January, again on 12 January (inside the gap after the 21:40
+    # resolution, so no new episode), then on 10 February and 10 March (each further than the gap):
+    # three episodes, worked by hand. Person 2 has one. After the first loop step only person 1 is
+    # followed, so the loop narrows its tables (cohort.episodes._narrow_pending) and must still find
+    # episodes 2 and 3, then leave the session with the full tables of sql/41 and sql/43.
+    from cohort._compile import compile_criterion
+    from cohort._labs import prepare_lab_events
+    from cohort._sql import run_recipe
+    from cohort.definitions import load_definition
+    from cohort.episodes import build_lab_state, episodes_in_session
+    from cohort.source import open_extract
+
+    cdm = MiniCdm()
+    adult(cdm, 1)
+    for visit_id, day in ((10, "2024-01-10"), (11, "2024-01-12"), (12, "2024-02-10"), (13, "2024-03-10")):
+        classic(cdm, 1, day, visit_id=visit_id, end=f"{day} 23:00")
+    adult(cdm, 2)
+    classic(cdm, 2, "2024-01-10", visit_id=20, end="2024-01-10 23:00")
+    path = cdm.write(tmp_path / "extract", fmt="parquet")
+    definition = load_definition("consensus-2024")
+    with open_extract(path) as extract:
+        con = extract.con
+        prepare_lab_events(extract)
+        run_recipe(con, "30_person_diabetes.sql", "dka_person_diabetes", {})
+        build_lab_state(con, [definition])
+        seconds: dict[str, float] = {}
+        frame, _ = episodes_in_session(con, definition, seconds=seconds)
+        assert "44_narrow" in seconds  # the narrowing ran
+        onsets = frame.filter(pl.col("person_id") == 1).sort("onset_datetime")
+        assert onsets.get_column("onset_datetime").to_list() == [
+            ts("2024-01-10 09:40"), ts("2024-02-10 09:40"), ts("2024-03-10 09:40")]
+        assert onsets.get_column("episode_number").to_list() == [1, 2, 3]
+        assert frame.filter(pl.col("person_id") == 2).height == 1
+        # sql/42 keeps only candidates that can be onsets: the first, and those more than the gap
+        # after it; 12 January 09:40 is 48 h after the first, so it is a candidate but no onset.
+        def times(table: str) -> list[dt.datetime]:
+            return [row[0] for row in con.execute(
+                f"select onset_datetime from {table} where person_id = 1 order by 1").fetchall()]
+        assert ts("2024-01-12 09:40") in times("dka_onset_candidates")
+        assert times("dka_onset_context") == [
+            ts("2024-01-10 09:40"), ts("2024-02-10 09:40"), ts("2024-03-10 09:40")]
+        left = {name for (name,) in con.execute("select table_name from duckdb_tables()").fetchall()}
+        assert not {name for name in left if name.endswith(("_full", "_narrowed"))}
+        for recipe, table in (("41_resolution_candidates.sql", "dka_resolution_candidates"),
+                              ("43_onset_censoring.sql", "dka_onset_context")):
+            kept = con.sql(f"select * from {table}").pl()
+            slots = {"resolution_screen": compile_criterion(
+                definition.resolution.when, column_for=lambda analyte: f"lab_state.rs_{analyte}",
+                flag_for=lambda flag: f"lab_state.{flag}"), "episode_gap_hours": 72.0}
+            run_recipe(con, recipe, f"{table}_again", slots)
+            again = con.sql(f"select * from {table}_again").pl()
+            assert kept.sort(kept.columns).equals(again.sort(again.columns)), table

@@ -15,7 +15,7 @@ from sqlglot.errors import ErrorLevel
 
 from cohort._compile import parse_criterion
 from cohort._sql import Fragment, render_recipe
-from cohort.episodes import screen_fragment
+from cohort.episodes import STATE_ANALYTES, screen_fragment
 
 RECIPES = ("30_person_diabetes.sql", "31_lab_state.sql", "40_onset_candidates.sql",
            "41_resolution_candidates.sql", "42_onset_visit.sql", "43_onset_censoring.sql",
@@ -26,6 +26,7 @@ SLOTS = {
     "diagnosis_lookback_hours": 6.0, "resolution_lookback_hours": 4.0, "anion_gap_pairing_minutes": 30.0,
     "ph_specimens": ("venous", "arterial"), "bicarbonate_specimens": ("serum",),
     "person_screen": screen_fragment([parse_criterion({"analyte": "bhb", "op": ">=", "value": 3.0})]),
+    "state_analytes": STATE_ANALYTES,
     "diagnosis": Fragment("coalesce((lab_state.dx_bhb >= 3.0), false)"),
     "severity": Fragment("case when coalesce((lab_state.dx_ph < 7.0), false) then 'severe' else null end"),
     "resolution_screen": Fragment("coalesce((lab_state.rs_bhb < 0.6), false)"),

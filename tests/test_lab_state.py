@@ -30,6 +30,7 @@ SLOTS = {
     "ph_specimens": ("arterial", "venous", "capillary", "unspecified"),
     "bicarbonate_specimens": ("serum", "blood", "arterial", "venous", "total_co2"),
     "person_screen": Fragment("true"),
+    "state_analytes": STATE_ANALYTES,
 }
 SAME_TIME = {"ph": min, "bicarbonate": min, "sodium": "avg", "chloride": "avg", "potassium": "avg"}
 
@@ -159,6 +160,46 @@ def test_screen_drops_persons_but_changes_no_kept_row():
     screened = state(session(events), {"person_screen": Fragment("(person_extremes.max_bhb >= 3.0)")})
     assert {r["person_id"] for r in screened} == {1}
     assert screened == [r for r in full if r["person_id"] == 1]
+
+
+def test_uncarried_analytes_keep_their_time_points_and_change_no_carried_value():
+    # Toolkit rule (sql/31 header, common practice for a state table): the list of carried
+    # analytes changes columns, never rows. An HbA1c-only time point (minute 90) stays a row and
+    # still carries the bicarbonate of minute 60; the HbA1c and creatinine columns go null.
+    events = [(1, 0, "glucose", "serum", 25.0), (1, 0, "sodium", "serum", 140.0),
+              (1, 0, "chloride", "serum", 100.0), (1, 0, "bicarbonate", "serum", 10.0),
+              (1, 60, "bicarbonate", "venous", 12.0), (1, 90, "hba1c", "blood", 9.1),
+              (1, 120, "creatinine", "serum", 110.0)]
+    carried = ("glucose", "ph", "bicarbonate", "bhb", "urine_ketones", "sodium", "chloride",
+               "potassium", "anion_gap")
+    full = state(session(events))
+    pruned = state(session(events), {"state_analytes": carried})
+    assert [r["state_datetime"] for r in pruned] == [r["state_datetime"] for r in full] == [
+        at(0), at(60), at(90), at(120)]
+    assert row_at(pruned, 1, 90)["dx_bicarbonate"] == 12.0
+    # derived anion gap at minute 0: 140 - (100 + 10) = 30 (CLINICAL.md, formulas: Na - (Cl + HCO3))
+    assert row_at(pruned, 1, 0)["dx_anion_gap"] == 30.0
+    for full_row, pruned_row in zip(full, pruned):
+        for column, value in pruned_row.items():
+            dropped = any(column in (f"dx_{a}", f"rs_{a}", f"rs_{a}_datetime")
+                          for a in ("hba1c", "creatinine", "anion_gap_with_k"))
+            assert value == (None if dropped else full_row[column]), column
+    assert row_at(full, 1, 90)["dx_hba1c"] == 9.1
+
+
+def test_carried_analytes_of_the_bundled_definitions():
+    # Each bundled definition's criteria name only glucose, pH, bicarbonate, BHB, urine ketones
+    # and the anion gap (cohort/definitions/*.yaml, checked against CLINICAL.md by
+    # tests/test_definitions_content.py); the onset contract adds potassium, the derived gap
+    # sodium and chloride. HbA1c, creatinine and the gap with potassium are never carried.
+    from cohort.definitions import load_definition
+    from cohort.episodes import carried_analytes
+
+    names = ("ada-2009", "consensus-2024", "jbds-2023", "ispad-2022")
+    carried = carried_analytes([load_definition(name) for name in names])
+    assert carried == ("glucose", "ph", "bicarbonate", "bhb", "urine_ketones", "sodium", "chloride",
+                       "potassium", "anion_gap")
+    assert set(carried) < set(STATE_ANALYTES)
 
 
 # ----------------------------------------------------------------------------- reference
