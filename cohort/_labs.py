@@ -16,8 +16,10 @@ The reconciliation identity is checked on every run, from counts taken independe
                                       + rows of other analytes (concept not in dka_concept_lab)
 
 ``dka_measurement_checked`` (tens of millions of rows at a million persons) is kept compressed in
-a scratch database file behind a temporary view (:func:`_work_catalog`); ``dka_lab_events`` is a
-view of its usable rows. ``on_step`` reports each recipe's time (``benchmarks/bench_labs.py``).
+a scratch database file behind a temporary view (:func:`_work_catalog`, :func:`_store`);
+``dka_lab_events`` is a view of its usable rows. ``on_step`` reports each recipe's time
+(``benchmarks/bench_labs.py``). ``rows_other`` is counted per concept from the one column
+``measurement_concept_id``, not by joining every measurement row.
 
 The unit conversions the recipes apply come from ``units.csv``; :func:`convert` applies one rule in
 Python (the worked-example tests check both against published factors).
@@ -176,6 +178,20 @@ def convert(value: float, *, multiply: float, add: float = 0.0) -> float:
     return value * multiply + add
 
 
+def _store(con: object, work: str, target: str, sql: str) -> None:
+    """Create ``work.main.target`` from the select ``sql`` and a temporary view ``target`` over it.
+
+    Text columns stay ``varchar``: storing analyte, specimen and reason as ``ENUM`` columns was
+    tried (100,000 persons, ``benchmarks/bench_labs.py`` session 2); it saved 0-12 % of the write
+    CPU in three runs and cost about half again as much CPU on a read that filters them (as
+    recipe 31 does), so it was not kept.
+    """
+    Identifier(target)
+    con.execute(f"create or replace table {work}.main.{target} as\n{sql}")  # type: ignore[attr-defined]
+    con.execute(  # type: ignore[attr-defined]
+        f"create or replace temp view {target} as select * from {work}.main.{target}")
+
+
 def _scalar(con: object, sql: str) -> int:
     rows = con.execute(sql).fetchall()  # type: ignore[attr-defined]
     return int(rows[0][0])
@@ -233,10 +249,7 @@ def prepare_lab_events(
             Identifier(target)
             con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, {})}")
         elif target in _STORED:
-            Identifier(target)
-            work = _work_catalog(extract)
-            con.execute(f"create or replace table {work}.main.{target} as\n{render_recipe(recipe, {})}")
-            con.execute(f"create or replace temp view {target} as select * from {work}.main.{target}")
+            _store(con, _work_catalog(extract), target, render_recipe(recipe, {}))
         else:
             run_recipe(con, recipe, target, {})
         if on_step is not None:
@@ -247,11 +260,15 @@ def prepare_lab_events(
     rows_used = _scalar(con, "select count(*) from dka_lab_events")
     rows_quarantined = _scalar(
         con, "select count(*) from dka_quarantine where source_table = 'measurement'")
+    # counted from measurement itself, one group per concept (a single narrow column), independently
+    # of the recipes' quarantine assignment
     rows_other = _scalar(
         con,
-        "select count(*) from measurement left join (select distinct concept_id from "
-        "dka_concept_lab) as lab_concepts on lab_concepts.concept_id = "
-        "measurement.measurement_concept_id where lab_concepts.concept_id is null",
+        "select coalesce(sum(per_concept.rows), 0) from (select measurement_concept_id, "
+        "count(*) as rows from measurement group by measurement_concept_id) as per_concept "
+        "left join (select distinct concept_id from dka_concept_lab) as lab_concepts "
+        "on lab_concepts.concept_id = per_concept.measurement_concept_id "
+        "where lab_concepts.concept_id is null",
     )
     counted = {(str(table), str(reason)): int(rows) for table, reason, rows in con.execute(
         "select source_table, reason, count(*) from dka_quarantine "
