@@ -92,6 +92,13 @@ def _overrides(pairs: Sequence[str]) -> dict[str, object]:
 def _cmd_episodes(args: argparse.Namespace) -> int:
     from cohort.episodes import find_episodes
 
+    if args.engine != "duckdb":  # the recipes run inside PostgreSQL or Spark; same output folder
+        from cohort.engines import episodes_command
+
+        return episodes_command(args)
+    if not args.source:
+        msg = "--source is required with --engine duckdb (a Parquet folder, a CSV folder or a DuckDB file)"
+        raise InputError(msg)
     result = find_episodes(
         Path(args.source),
         args.definition or ["consensus-2024"],
@@ -286,7 +293,11 @@ def build_parser() -> argparse.ArgumentParser:
             "agreement.csv and manifest.json under OUT."
         ),
     )
-    episodes.add_argument("--source", required=True, help="the extract: a Parquet folder, a CSV folder or a DuckDB file")
+    episodes.add_argument(
+        "--source",
+        help=("the extract: a Parquet folder, a CSV folder or a DuckDB file (with --engine spark, a Parquet "
+              "folder Spark can read; not used with --engine postgres)"),
+    )
     episodes.add_argument(
         "--definition",
         action="append",
@@ -306,6 +317,9 @@ def build_parser() -> argparse.ArgumentParser:
     )
     episodes.add_argument("--codelists", help="a folder of code-list CSVs replacing the bundled ones")
     _add_engine_options(episodes)
+    from cohort.engines._episodes import add_engine_arguments  # --engine, --dsn, --schema, --spark-master
+
+    add_engine_arguments(episodes)
     episodes.add_argument("--quiet", action="store_true", help="do not show progress")
     episodes.set_defaults(func=_cmd_episodes)
 

@@ -99,3 +99,11 @@ def test_other_errors_are_not_hidden(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(cohort.episodes, "find_episodes", broken)
     with pytest.raises(ZeroDivisionError):
         main(["episodes", "--source", "x", "--definition", "consensus-2024", "--out", "o"])
+
+
+def test_episodes_engine_postgres_without_dsn_is_one_line(capsys: pytest.CaptureFixture[str], tmp_path) -> None:
+    code = main(["episodes", "--engine", "postgres", "--out", str(tmp_path / "o"), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("\n") == 1 and "--dsn" in err, err
+    assert not (tmp_path / "o").exists()

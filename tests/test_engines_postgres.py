@@ -161,3 +161,127 @@ def test_session_fetch_types(runs) -> None:
     episodes = postgres["dka_episodes"]
     assert episodes.schema["person_id"] == pl.Int64
     assert isinstance(episodes.schema["onset_datetime"], pl.Datetime)
+
+
+# --------------------------------------------------------------------------- dka-cohort episodes --engine postgres
+# two definitions with different populations (adults; under 18: ISPAD 2022) so the lab state is
+# shared and the attrition and agreement tables have several finders
+COMMAND_DEFINITIONS = ["consensus-2024", "ispad-2022"]
+CONTRACT_TABLES = ("episodes.parquet", "quarantine.parquet", "code_episodes.parquet")
+CONTRACT_CSVS = ("attrition.csv", "data_quality.csv", "agreement.csv")
+
+
+@pytest.fixture(scope="module")
+def command_runs(dsn, extract, loaded, tmp_path_factory):
+    import argparse
+    import time
+
+    from cohort.engines import episodes_command
+    from cohort.episodes import find_episodes
+
+    folder = tmp_path_factory.mktemp("pg_command")
+    args = argparse.Namespace(engine="postgres", dsn=dsn, schema="cdm", spark_master=None, source=None,
+                              definition=COMMAND_DEFINITIONS, out=str(folder / "postgres"), set=[],
+                              codelists=None, threads=None, memory_limit=None, quiet=True)
+    started = time.perf_counter()
+    assert episodes_command(args) == 0
+    seconds = time.perf_counter() - started
+    find_episodes(extract, COMMAND_DEFINITIONS, out=folder / "duckdb", threads=2)
+    return folder / "postgres", folder / "duckdb", seconds
+
+
+def test_episodes_command_on_postgres_writes_the_duckdb_folder_issue_8(command_runs) -> None:
+    postgres, duckdb_out, _ = command_runs
+    assert sorted(path.name for path in postgres.iterdir()) == sorted(path.name for path in duckdb_out.iterdir())
+    for name in CONTRACT_TABLES:
+        found, expected = pl.read_parquet(postgres / name), pl.read_parquet(duckdb_out / name)
+        assert found.schema == expected.schema, name
+        assert found.equals(expected), name
+    for name in CONTRACT_CSVS:
+        assert (postgres / name).read_text() == (duckdb_out / name).read_text(), name
+    episodes = pl.read_parquet(postgres / "episodes.parquet")
+    # not a comparison of empty tables: both definitions find episodes in the extract
+    assert set(episodes.get_column("definition")) == set(COMMAND_DEFINITIONS)
+    assert episodes.height > 20
+    assert episodes.get_column("onset_datetime").dt.microsecond().max() == 0  # times to the second
+
+
+def test_episodes_command_records_the_engine_in_the_manifest(command_runs, dsn) -> None:
+    import json
+
+    postgres, duckdb_out, _ = command_runs
+    manifest = json.loads((postgres / "manifest.json").read_text())
+    assert manifest["engine"]["name"] == "postgres"
+    assert manifest["engine"]["version"].startswith("15")  # the server .ci/postgres.sh starts
+    assert manifest["parameters"]["engine"] == "postgres"
+    assert manifest["source"]["schema"] == "cdm"
+    reference = json.loads((duckdb_out / "manifest.json").read_text())
+    assert manifest["counts"] == {**reference["counts"], "reconciles": True}
+    for table in ("person", "measurement"):
+        assert manifest["source"]["tables"][table]["rows"] == reference["source"]["tables"][table]["rows"]
+
+
+def test_episodes_on_postgres_leaves_the_cdm_schema_as_it_was(command_runs, dsn) -> None:
+    from cohort._cdm import CDM_TABLES
+    from cohort.engines import connect_postgres
+
+    with connect_postgres(dsn) as con:
+        tables = {row[0] for row in con.execute(
+            "select table_name from information_schema.tables where table_schema = 'cdm'").fetchall()}
+        schemas = {row[0] for row in con.execute("select schema_name from information_schema.schemata")}
+    assert tables == set(CDM_TABLES)
+    assert not any(name.startswith("dka") for name in schemas)
+
+
+def test_engine_errors_are_one_clear_message_each(dsn, tmp_path, monkeypatch) -> None:
+    import socket
+    import sys
+
+    from cohort._errors import CohortError, InputError
+    from cohort.engines import connect_postgres, find_episodes_on_engine
+
+    with pytest.raises(InputError, match="--engine postgres needs --dsn"):
+        find_episodes_on_engine("postgres", ["ada-2009"], out=tmp_path / "a")
+    with pytest.raises(InputError, match="unknown engine 'oracle'"):
+        find_episodes_on_engine("oracle", ["ada-2009"])
+    # a port nothing listens on
+    probe = socket.socket()
+    probe.bind(("127.0.0.1", 0))
+    port = probe.getsockname()[1]
+    probe.close()
+    with pytest.raises(CohortError, match=r"cannot connect to PostgreSQL at .*\.ci/postgres\.sh"):
+        find_episodes_on_engine("postgres", ["ada-2009"], dsn=f"postgresql://postgres@127.0.0.1:{port}/postgres",
+                                out=tmp_path / "b")
+    # a schema holding some CDM tables but not all
+    with connect_postgres(dsn) as con:
+        con.execute("drop schema if exists partial cascade")
+        con.execute("create schema partial")
+        con.execute("create table partial.person (person_id bigint, year_of_birth integer)")
+    try:
+        with pytest.raises(InputError, match=r"schema partial .* lacks the CDM table\(s\) observation_period, "
+                                             r"visit_occurrence"):
+            find_episodes_on_engine("postgres", ["ada-2009"], dsn=dsn, schema="partial", out=tmp_path / "c")
+    finally:
+        with connect_postgres(dsn) as con:
+            con.execute("drop schema partial cascade")
+    # psycopg missing
+    monkeypatch.setitem(sys.modules, "psycopg", None)
+    with pytest.raises(CohortError, match=r"needs psycopg 3: pip install 'psycopg\[binary\]'"):
+        find_episodes_on_engine("postgres", ["ada-2009"], dsn=dsn, out=tmp_path / "d")
+    assert not any(tmp_path.iterdir())  # nothing written by a run that failed
+
+
+def test_fetch_streams_every_type_back(dsn, loaded) -> None:
+    from datetime import date, datetime
+
+    from cohort.engines import PostgresSession
+
+    with PostgresSession(dsn, schema="cdm") as session:
+        session.materialise("dka_types", "select cast(1 as bigint) as id, 2.5::float8 as value, "
+                            "0.1::float8 + 0.2::float8 as inexact, 'a,\"b\"' as text_value, '' as empty_text, "
+                            "cast(null as text) as no_text, true as flag, cast(null as boolean) as no_flag, "
+                            "timestamp '2024-03-01 10:00:00.5' as at, date '2024-03-01' as day")
+        frame = session.fetch("dka_types")
+    assert frame.rows() == [(1, 2.5, 0.1 + 0.2, 'a,"b"', "", None, True, None,
+                             datetime(2024, 3, 1, 10, 0, 0, 500000), date(2024, 3, 1))]
+    assert frame.schema["id"] == pl.Int64 and frame.schema["at"] == pl.Datetime("us")

@@ -15,8 +15,9 @@ Constructs refused (they give wrong answers or fail on the target; the recipe mu
   use ``row_number()`` over a join;
 - ``date_diff`` / ``datediff`` (every target but DuckDB): DuckDB counts unit boundaries crossed,
   Spark whole units elapsed; subtract ``extract(epoch from ...)`` instead;
-- interval arithmetic outside PostgreSQL and Spark: any ``interval`` for T-SQL (no such type),
-  an interval multiplied by a number for BigQuery and Snowflake (``interval '1 hour' * 6.0``);
+- interval arithmetic :func:`add_hours` cannot write for BigQuery, Snowflake or T-SQL (an
+  interval of months or years, an interval outside ``time +/- interval [* n]``);
+- for T-SQL, a condition as a function's argument (``max(a > b)``: T-SQL has no boolean type);
 - a select-list alias used again in the same ``select`` (projections, ``where``, ``group by``,
   ``having``) (every target but DuckDB): PostgreSQL 15 refuses it, others may bind the source
   column of the same name.
@@ -33,11 +34,24 @@ Constructs rewritten (exactly):
   :func:`cohort.engines.local_spark` sets it and :class:`cohort.engines.SparkSession` checks);
 - ``make_date`` on PostgreSQL stays ``make_date`` (sqlglot 30 writes ``date_from_parts``);
 - ``cast(float as varchar)`` on PostgreSQL writes whole numbers as DuckDB does (``8.0``, not ``8``);
-- ``cast(... as timestamp)`` on Spark becomes ``timestamp_ntz`` (CDM times are naive local times).
+- ``cast(... as timestamp)`` on Spark becomes ``timestamp_ntz`` (CDM times are naive local times);
+- ``add_hours``: ``time +/- interval 'k unit' [* n]`` on BigQuery, Snowflake and T-SQL becomes the
+  engine's own shift by ``round(k * n * unit seconds)`` whole seconds (``DATETIME_ADD``,
+  ``DATEADD(SECOND, ...)``; :func:`add_hours`);
+- ``extract(epoch from ts)`` on BigQuery, Snowflake and T-SQL becomes microseconds since 1970 over
+  10^6 (``UNIX_MICROS``, ``DATE_PART(EPOCH_MICROSECOND, ...)``, ``DATEDIFF_BIG(MICROSECOND, ...)``);
+- ``least``/``greatest`` on BigQuery (null when any argument is null there) take
+  ``coalesce(argument, the others...)`` so nulls are skipped as in DuckDB;
+- a condition used as a value on T-SQL (``a is not null as flag``, ``true``) becomes a ``bit``
+  (``cast(case when c then 1 when not (c) then 0 end as bit)``).
+
+Only DuckDB, PostgreSQL and Spark are run by the tests; the BigQuery, Snowflake and T-SQL texts are
+checked for constructs (every recipe renders or is refused by name), not run.
 """
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -50,6 +64,8 @@ from cohort._errors import CohortError
 
 __all__ = [
     "DIALECTS",
+    "ADD_HOURS_DIALECTS",
+    "add_hours",
     "transpile",
     "render_for",
     "render_all",
@@ -207,6 +223,124 @@ def _sources(select: exp.Select) -> Iterable[exp.Expression]:
 
 
 # --------------------------------------------------------------------------- transforms
+#: Seconds in one interval unit the ``add_hours`` transform rewrites (fixed-length units only:
+#: months and years have no fixed length and are left to the interval check, which refuses them).
+_UNIT_SECONDS: dict[str, int] = {
+    "second": 1, "seconds": 1, "minute": 60, "minutes": 60, "hour": 3600, "hours": 3600,
+    "day": 86400, "days": 86400, "week": 604800, "weeks": 604800,
+}
+
+#: Dialects whose ``timestamp +/- interval [* n]`` is written by :func:`add_hours`.
+ADD_HOURS_DIALECTS: tuple[str, ...] = ("bigquery", "snowflake", "tsql")
+
+
+def _interval_seconds(node: exp.Expression) -> exp.Expression | None:
+    """Seconds of ``interval 'k unit'``, ``interval 'k unit' * n`` or ``n * interval ...`` as SQL; else None."""
+    while isinstance(node, exp.Paren):
+        node = node.this
+    factor: exp.Expression | None = None
+    interval = node
+    if isinstance(node, exp.Mul):
+        left, right = node.this, node.expression
+        while isinstance(left, exp.Paren):
+            left = left.this
+        while isinstance(right, exp.Paren):
+            right = right.this
+        if isinstance(left, exp.Interval) and not isinstance(right, exp.Interval):
+            interval, factor = left, right
+        elif isinstance(right, exp.Interval) and not isinstance(left, exp.Interval):
+            interval, factor = right, left
+        else:
+            return None
+    if not isinstance(interval, exp.Interval):
+        return None
+    text = interval.this.name if isinstance(interval.this, exp.Literal) else None
+    unit = interval.args.get("unit")
+    unit_name = unit.name.lower() if unit is not None else ""
+    if text is None:
+        return None
+    parts = text.split()
+    if len(parts) == 2 and not unit_name:
+        text, unit_name = parts[0], parts[1].lower()
+    elif len(parts) != 1:
+        return None
+    if unit_name not in _UNIT_SECONDS or not re.fullmatch(r"[0-9]+(\.[0-9]+)?", text):
+        return None
+    seconds = float(text) * _UNIT_SECONDS[unit_name]
+    literal = exp.Literal.number(repr(seconds) if seconds != int(seconds) else str(int(seconds)))
+    if factor is None:
+        return literal
+    return exp.Mul(this=exp.Paren(this=factor.copy()), expression=literal)
+
+
+def _whole_seconds(seconds: exp.Expression, dialect: str) -> exp.Expression:
+    """``cast(round(seconds, 0) as <integer>)``: a whole number of seconds for the engine's add."""
+    if isinstance(seconds, exp.Literal):
+        return seconds
+    integer = {"bigquery": "int64", "snowflake": "bigint", "tsql": "int"}[dialect]
+    rounded = exp.Anonymous(this="ROUND", expressions=[seconds, exp.Literal.number(0)])
+    return exp.Cast(this=rounded, to=exp.DataType.build(integer, dialect=dialect))
+
+
+def _add_seconds(ts: exp.Expression, seconds: exp.Expression, negative: bool, dialect: str) -> exp.Expression:
+    amount = _whole_seconds(seconds, dialect)
+    if dialect == "bigquery":
+        name = "DATETIME_SUB" if negative else "DATETIME_ADD"
+        return exp.Anonymous(this=name, expressions=[ts, exp.Interval(this=amount, unit=exp.Var(this="SECOND"))])
+    if negative:
+        amount = exp.Neg(this=exp.Paren(this=amount)) if not isinstance(amount, exp.Literal) else \
+            exp.Literal.number(f"-{amount.name}")
+    return exp.Anonymous(this="DATEADD", expressions=[exp.Var(this="SECOND"), amount, ts])
+
+
+def add_hours(tree: exp.Expression, dialect: str) -> exp.Expression:
+    """The ``add_hours(ts, hours)`` construct: ``ts +/- interval 'k unit' [* n]`` as the engine's add.
+
+    The recipes write a shift of a time by a number of hours (or minutes, days, seconds) as DuckDB
+    interval arithmetic, ``ts + interval '1 hour' * n``, which PostgreSQL and Spark run as it is.
+    BigQuery and Snowflake do not multiply an interval by a number that way and T-SQL has no
+    interval type, so for :data:`ADD_HOURS_DIALECTS` the shift becomes a whole number of seconds
+    (``round(n * 3600)``, exact to the second for any fraction of an hour) added by the engine's
+    function:
+
+    - BigQuery: ``datetime_add(ts, interval cast(round((n) * 3600, 0) as int64) second)``
+      (``datetime_sub`` for a minus; CDM times are naive, BigQuery's ``DATETIME``);
+    - Snowflake: ``dateadd(second, cast(round((n) * 3600, 0) as bigint), ts)``;
+    - T-SQL: ``dateadd(second, cast(round((n) * 3600, 0) as int), ts)`` (T-SQL's ``dateadd``
+      takes an ``int``: shifts up to 68 years).
+
+    A minus negates the seconds. Intervals in any other position, or of months and years (no fixed
+    length), are left alone, so the interval check still refuses them with the recipe named.
+    Other dialects are returned unchanged.
+
+    Examples
+    --------
+    >>> tree = sqlglot.parse_one("select t + interval '1 hour' * 1.5 as later from labs", read="duckdb")
+    >>> add_hours(tree, "snowflake").sql(dialect="snowflake")
+    'SELECT DATEADD(SECOND, CAST(ROUND((1.5) * 3600, 0) AS BIGINT), t) AS later FROM labs'
+    """
+    if dialect not in ADD_HOURS_DIALECTS:
+        return tree
+
+    def convert(node: exp.Expression) -> exp.Expression:
+        if not isinstance(node, (exp.Add, exp.Sub)):
+            return node
+        seconds = _interval_seconds(node.expression)
+        negative = isinstance(node, exp.Sub)
+        ts = node.this
+        if seconds is None and isinstance(node, exp.Add):
+            # `interval ... + ts`: the interval on the left
+            seconds = _interval_seconds(node.this)
+            ts = node.expression
+        if seconds is None:
+            return node
+        if _interval_seconds(ts) is not None:
+            return node  # interval +/- interval: no time to shift
+        return _add_seconds(convert(ts.copy()), seconds, negative, dialect)
+
+    return tree.transform(convert)
+
+
 def _expand_group_by_all(tree: exp.Expression) -> exp.Expression:
     for select in list(tree.find_all(exp.Select)):
         group = select.args.get("group")
@@ -260,6 +394,117 @@ def _explicit_null_keys(tree: exp.Expression, dialect: str) -> exp.Expression:
         ordered.set("nulls_first", target_nulls_first)
         items.insert(position, lead)
         holder.set(field, items)
+    return tree
+
+
+def _bigquery_null_skipping_extrema(tree: exp.Expression) -> exp.Expression:
+    """``least``/``greatest`` skip nulls in DuckDB, PostgreSQL and Spark; BigQuery returns null.
+
+    Each argument becomes ``coalesce(itself, the others...)``: a null argument takes another
+    argument's value, which cannot change the least (or greatest) of the non-null ones, and all
+    null stays null, so the answer is DuckDB's exactly.
+    """
+    def rewrite(node: exp.Expression) -> exp.Expression:
+        if not isinstance(node, (exp.Least, exp.Greatest)):
+            return node
+        items = [node.this, *node.expressions]
+        if len(items) < 2:
+            return node
+        guarded = [
+            exp.Coalesce(this=item.copy(), expressions=[other.copy() for other in items if other is not item])
+            for item in items
+        ]
+        return type(node)(this=guarded[0], expressions=guarded[1:])
+
+    return tree.transform(rewrite)
+
+
+def _epoch_seconds(tree: exp.Expression, dialect: str) -> exp.Expression:
+    """``extract(epoch from ts)`` (seconds since 1970 as a double) where the engine has no epoch field.
+
+    BigQuery's ``extract`` has no ``EPOCH`` and T-SQL's ``datepart`` none either; Snowflake's
+    ``EPOCH`` part is whole seconds. Each becomes microseconds since 1970 divided by 10^6 (as
+    Spark's rendering does), the naive time read as UTC:
+
+    - BigQuery: ``unix_micros(timestamp(ts)) / 1000000.0``;
+    - Snowflake: ``date_part(epoch_microsecond, ts) / 1000000.0``;
+    - T-SQL: ``cast(datediff_big(microsecond, cast('1970-01-01' as datetime2), ts) as float) / 1000000.0``
+      (a count of microsecond boundaries is the exact number of microseconds).
+    """
+    if dialect not in ("bigquery", "snowflake", "tsql"):
+        return tree
+
+    def rewrite(node: exp.Expression) -> exp.Expression:
+        if not (isinstance(node, exp.Extract) and node.this.name.lower() == "epoch"):
+            return node
+        value = node.expression.copy()
+        if dialect == "bigquery":
+            micros: exp.Expression = exp.Anonymous(
+                this="UNIX_MICROS", expressions=[exp.Anonymous(this="TIMESTAMP", expressions=[value])])
+        elif dialect == "snowflake":
+            micros = exp.Anonymous(this="DATE_PART", expressions=[exp.Var(this="EPOCH_MICROSECOND"), value])
+        else:
+            start = exp.Cast(this=exp.Literal.string("1970-01-01"), to=exp.DataType.build("datetime2", dialect="tsql"))
+            micros = exp.Cast(this=exp.Anonymous(this="DATEDIFF_BIG", expressions=[
+                exp.Var(this="MICROSECOND"), start, value]), to=exp.DataType.build("float", dialect="tsql"))
+        return exp.Paren(this=exp.Div(this=micros, expression=exp.Literal.number("1000000.0")))
+
+    return tree.transform(rewrite)
+
+
+_BOOLEAN_NODES = (exp.Predicate, exp.Not, exp.And, exp.Or, exp.Boolean, exp.Xor)
+
+
+def _tsql_boolean_values(tree: exp.Expression, recipe: str) -> exp.Expression:
+    """T-SQL has no boolean type: a condition used as a value becomes a ``bit``.
+
+    A select-list item that is a condition (``a is not null as flag``, ``coalesce(a <= b, false)``,
+    a ``then``/``else`` of a ``case``) becomes ``cast(case when c then 1 when not (c) then 0 end
+    as bit)``, which keeps the unknown of a null comparison; ``true``/``false`` values become
+    ``cast(1 as bit)``/``cast(0 as bit)``. sqlglot already writes a ``bit`` column used as a
+    condition as ``column <> 0``. A condition in any other value place (an aggregate's argument)
+    is refused with the recipe named.
+    """
+    def as_bit(node: exp.Expression) -> exp.Expression:
+        bit = exp.DataType.build("bit", dialect="tsql")
+        if isinstance(node, exp.Boolean):
+            return exp.Cast(this=exp.Literal.number(1 if node.this else 0), to=bit)
+        case = exp.Case(ifs=[
+            exp.If(this=node.copy(), true=exp.Literal.number(1)),
+            exp.If(this=exp.Not(this=exp.Paren(this=node.copy())), true=exp.Literal.number(0)),
+        ])
+        return exp.Cast(this=case, to=bit)
+
+    def value(node: exp.Expression) -> exp.Expression:
+        if isinstance(node, _BOOLEAN_NODES):
+            return as_bit(node)
+        if isinstance(node, exp.Paren):
+            node.set("this", value(node.this))
+        elif isinstance(node, exp.Coalesce):
+            node.set("this", value(node.this))
+            node.set("expressions", [value(item) for item in node.expressions])
+        elif isinstance(node, exp.Case):
+            for branch in node.args.get("ifs") or []:
+                branch.set("true", value(branch.args["true"]))
+            if node.args.get("default") is not None:
+                node.set("default", value(node.args["default"]))
+        return node
+
+    for select in list(tree.find_all(exp.Select)):
+        items = []
+        for projection in select.expressions:
+            if isinstance(projection, exp.Alias):
+                projection.set("this", value(projection.this))
+                items.append(projection)
+            else:
+                items.append(value(projection))
+        select.set("expressions", items)
+    for node in tree.find_all(*_BOOLEAN_NODES):
+        parent = node.parent
+        if isinstance(parent, exp.Func) and not isinstance(parent, (exp.Case, exp.If, exp.Coalesce, *_BOOLEAN_NODES)):
+            raise _fail(recipe, "tsql", _snippet(parent), "T-SQL has no boolean type, so a condition "
+                        "cannot be a function's argument", "Compute it as a case when ... then 1 "
+                        "else 0 end in an earlier CTE")
     return tree
 
 
@@ -374,12 +619,18 @@ def transpile(sql: str, dialect: str, *, recipe: str = "<text>", pretty: bool = 
         _check_lateral_limit(tree, recipe, dialect)
         _check_date_diff(tree, recipe, dialect)
         _check_alias_reuse(tree, recipe, dialect)
+        tree = add_hours(tree, dialect)
         _check_intervals(tree, recipe, dialect)
         tree = _expand_group_by_all(tree)
         tree = _alias_derived_tables(tree)
         tree = _explicit_null_keys(tree, dialect)
         if dialect == "spark":
             tree = _spark_epoch_and_timestamps(tree)
+        if dialect == "bigquery":
+            tree = _bigquery_null_skipping_extrema(tree)
+        tree = _epoch_seconds(tree, dialect)
+        if dialect == "tsql":
+            tree = _tsql_boolean_values(tree, recipe)
         if dialect == "postgres":
             tree = _postgres_make_date(tree)
             tree = _postgres_float_text(tree)
@@ -458,7 +709,7 @@ def recipe_values(definitions: Any | Sequence[Any]) -> dict[str, dict[str, Any]]
 
     items = [definitions] if not isinstance(definitions, (list, tuple)) else list(definitions)
     loaded = [_definition(item) for item in items]
-    state: dict[str, Any] = dict(_state_slots(loaded[0]))
+    state: dict[str, Any] = dict(_state_slots(loaded))
     state["person_screen"] = screen_fragment([item.diagnosis for item in loaded])
     out: dict[str, dict[str, Any]] = {"state": state}
     for definition in loaded:

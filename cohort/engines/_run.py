@@ -4,8 +4,10 @@ An engine session (:class:`EngineSession`) knows how to materialise a select as 
 a select to a table, count rows and fetch a table as polars. :func:`run_recipes` drives it through
 the same steps as :func:`cohort._labs.prepare_lab_events` and
 :func:`cohort.episodes.episodes_in_session` (recipes 10 .. 22, 30, 31, 40 .. 46 with the episode
-loop, 50, 51), every statement written for the engine by :func:`cohort.engines._dialect.transpile`.
-:func:`duckdb_reference` runs the project's own DuckDB path on an extract and returns the same
+loop, 50, 51), every statement written for the engine by :func:`cohort.engines._dialect.transpile`;
+its steps (:func:`run_lab_steps`, :func:`run_state_step`, :func:`run_definition_steps`,
+:func:`run_finder_steps`) are what :func:`cohort.engines.find_episodes_on_engine` runs for several
+definitions. :func:`duckdb_reference` runs the project's own DuckDB path on an extract and returns the same
 tables, and :func:`compare_tables` says where two runs differ.
 """
 
@@ -26,6 +28,10 @@ __all__ = [
     "EngineSession",
     "recipe_tables",
     "run_recipes",
+    "run_lab_steps",
+    "run_state_step",
+    "run_definition_steps",
+    "run_finder_steps",
     "duckdb_reference",
     "compare_tables",
     "compare_runs",
@@ -55,6 +61,12 @@ class EngineSession(Protocol):
 
     def fetch(self, table: str) -> pl.DataFrame:
         """The whole table as polars."""
+
+    def query(self, sql: str, recipe: str = "<query>") -> list[tuple[Any, ...]]:
+        """Rows of a select written for the engine (counts; used by find_episodes_on_engine)."""
+
+    def close(self) -> None:
+        """Drop what the session made."""
 
 
 def _lab_recipes() -> tuple[tuple[str, str], ...]:
@@ -121,31 +133,53 @@ def run_recipes(
     slots: dict[str, Any] = {**values["state"], **values[loaded.name]}
     lists = codelists if isinstance(codelists, CodeLists) else read_codelists(codelists)
     session.register_codelists(lists)
+    made: list[str] = []
+    made += run_lab_steps(session, until=until)
+    if until is not None and until < "31":
+        return made
+    made += run_state_step(session, slots)
+    if until is not None and until < "40":
+        return made
+    made += run_definition_steps(session, slots, until=until)
+    if until is not None and until < "50":
+        return made
+    made += run_finder_steps(session, until=until)
+    return made
+
+
+def _stop(recipe: str, until: str | None) -> bool:
+    return until is not None and recipe[:2] > until
+
+
+def run_lab_steps(session: EngineSession, *, until: str | None = None) -> list[str]:
+    """Recipes 10 .. 22 (lab events, quarantine) and 30 (known diabetes); code lists registered first."""
+    made: list[str] = []
+    for recipe, target in (*_lab_recipes(), ("30_person_diabetes.sql", "dka_person_diabetes")):
+        if _stop(recipe, until):
+            break
+        session.materialise(target, render_for(session.dialect, recipe, {}))
+        made.append(target)
+    return made
+
+
+def run_state_step(session: EngineSession, slots: Mapping[str, Any]) -> list[str]:
+    """Recipe 31 (the lab state) with the slots of one group of definitions (:func:`recipe_values`)."""
+    session.materialise("dka_lab_state", render_for(session.dialect, "31_lab_state.sql", slots))
+    return ["dka_lab_state"]
+
+
+def run_definition_steps(session: EngineSession, slots: Mapping[str, Any], *,
+                         until: str | None = None) -> list[str]:
+    """Recipes 40 .. 46 for one definition, with the episode loop of :mod:`cohort.episodes`."""
     dialect = session.dialect
     made: list[str] = []
-
-    def stop(recipe: str) -> bool:
-        return until is not None and recipe[:2] > until
-
-    def run(recipe: str, target: str) -> None:
-        session.materialise(target, render_for(dialect, recipe, slots))
-        made.append(target)
-
-    for recipe, target in _lab_recipes():
-        if stop(recipe):
-            return made
-        run(recipe, target)
-    for recipe, target in (("30_person_diabetes.sql", "dka_person_diabetes"),
-                           ("31_lab_state.sql", "dka_lab_state")):
-        if stop(recipe):
-            return made
-        run(recipe, target)
     for recipe, target in zip(EPISODE_RECIPES[:4], ("dka_onset_candidates", "dka_resolution_candidates",
                                                     "dka_onset_visit", "dka_onset_context")):
-        if stop(recipe):
+        if _stop(recipe, until):
             return made
-        run(recipe, target)
-    if stop("44"):
+        session.materialise(target, render_for(dialect, recipe, slots))
+        made.append(target)
+    if _stop("44", until):
         return made
     session.materialise("dka_episode_cutoff", session_sql("first_cutoff", dialect))
     step_sql = render_for(dialect, "44_episode_step.sql", slots)
@@ -167,12 +201,23 @@ def run_recipes(
             raise CohortError(msg)
     made.append("dka_episode_chain")
     for recipe, target in (("45_episode_rebound.sql", "dka_episode_rebound"),
-                           ("46_episodes.sql", "dka_episodes"),
-                           ("50_code_episodes.sql", "dka_code_episodes"),
-                           ("51_hospital_stays.sql", "dka_hospital_stays")):
-        if stop(recipe):
+                           ("46_episodes.sql", "dka_episodes")):
+        if _stop(recipe, until):
             return made
-        run(recipe, target)
+        session.materialise(target, render_for(dialect, recipe, slots))
+        made.append(target)
+    return made
+
+
+def run_finder_steps(session: EngineSession, *, until: str | None = None) -> list[str]:
+    """Recipes 50 (the code-based finder) and 51 (hospital stays)."""
+    made: list[str] = []
+    for recipe, target in (("50_code_episodes.sql", "dka_code_episodes"),
+                           ("51_hospital_stays.sql", "dka_hospital_stays")):
+        if _stop(recipe, until):
+            break
+        session.materialise(target, render_for(session.dialect, recipe, {}))
+        made.append(target)
     return made
 
 

@@ -1,11 +1,14 @@
-"""Spark: run the recipes through a Spark session on CDM tables staged as Parquet (pyspark 4).
+"""Spark: run the recipes through a Spark session on CDM tables as temporary views (pyspark 4).
 
 :func:`local_spark` starts a small local session set up as the recipes need it: time zone UTC,
 ``spark.sql.timestampType=TIMESTAMP_NTZ`` (CDM times are naive local times), adaptive query
-execution on, the driver bound to 127.0.0.1. :class:`SparkSession` stages an extract's CDM tables
-(read through :func:`cohort.source.open_extract`, so with DuckDB's types and full column lists)
-as Parquet and registers them as temporary views; every recipe is written to Parquet there and read back
-as a temporary view (so the episode loop does not grow its plan), and tables come back as polars.
+execution on, the driver bound to 127.0.0.1; :func:`connect_spark` also reaches a cluster master
+or a Spark Connect server with the same settings. :class:`SparkSession` registers the CDM tables
+as temporary views: an extract staged as Parquet through :func:`cohort.source.open_extract` (with
+DuckDB's types and full column lists), a Parquet folder Spark reads itself, or tables of a catalog
+database, cast to the CDM types. Every recipe is written to Parquet in a staging folder and read
+back as a temporary view (so the episode loop does not grow its plan), and tables come back as
+polars through Arrow.
 """
 
 from __future__ import annotations
@@ -20,7 +23,7 @@ import polars as pl
 
 from cohort._errors import CohortError, InputError
 
-__all__ = ["local_spark", "SparkSession"]
+__all__ = ["local_spark", "connect_spark", "SparkSession"]
 
 
 def _pyspark() -> Any:
@@ -58,25 +61,84 @@ def local_spark(*, cores: int = 2, memory: str = "1g", app: str = "dka-cohort") 
     try:
         spark = builder.getOrCreate()
     except Exception as error:  # Java missing or the JVM does not start
-        msg = f"could not start a local Spark session (is Java 17 installed?): {error}"
+        first = " ".join(str(error).split())[:300] or type(error).__name__
+        msg = (f"could not start a local Spark session: {first}. Install Java 17 "
+               "(openjdk-17-jre-headless; .ci/spark.sh) and put java on PATH or set JAVA_HOME")
         raise CohortError(msg) from None
     spark.sparkContext.setLogLevel("ERROR")
     return spark
 
 
+_SPARK_TYPES: dict[str, str] = {
+    "id": "bigint", "concept": "int", "int": "int", "float": "double", "date": "date",
+    "datetime": "timestamp_ntz", "text": "string",
+}
+
+
+def connect_spark(master: str | None = None, *, cores: int = 2, memory: str = "1g",
+                  app: str = "dka-cohort") -> Any:
+    """A Spark session for the recipes: local (``None`` or ``local[n]``), a cluster or Spark Connect.
+
+    ``master`` is a Spark master URL (``local[2]``, ``spark://host:7077``, ``yarn``, ...) or a
+    Spark Connect URL (``sc://host:15002``). Local sessions are :func:`local_spark`; others get the
+    settings the recipes need (session time zone UTC, ``TIMESTAMP_NTZ``, adaptive execution on).
+
+    Examples
+    --------
+    >>> spark = connect_spark("spark://cluster:7077")   # doctest: +SKIP
+    """
+    if master is None or master.startswith("local"):
+        if master and master.startswith("local[") and master.endswith("]") and master[6:-1].isdigit():
+            cores = int(master[6:-1])
+        return local_spark(cores=cores, memory=memory, app=app)
+    _, session_class = _pyspark()
+    settings = {
+        "spark.sql.session.timeZone": "UTC",
+        "spark.sql.timestampType": "TIMESTAMP_NTZ",
+        "spark.sql.adaptive.enabled": "true",
+    }
+    try:
+        if master.startswith("sc://"):
+            builder = session_class.builder.remote(master).appName(app)
+        else:
+            builder = session_class.builder.master(master).appName(app)
+        for key, value in settings.items():
+            builder = builder.config(key, value)
+        spark = builder.getOrCreate()
+        for key, value in settings.items():
+            spark.conf.set(key, value)
+    except Exception as error:  # noqa: BLE001 - any failure to reach the master
+        first = str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__
+        msg = (f"could not start a Spark session on {master!r}: {first}. Check --spark-master (a "
+               "Spark master URL such as spark://host:7077, or sc://host:15002 for Spark Connect)")
+        raise CohortError(msg) from None
+    return spark
+
+
 class SparkSession:
-    """Run recipes in Spark on an extract's CDM tables; tables come back as polars.
+    """Run recipes in Spark on CDM tables; tables come back as polars.
 
     Parameters
     ----------
     spark
-        A pyspark session (:func:`local_spark`, or a remote one with the same settings: UTC,
-        ``spark.sql.timestampType=TIMESTAMP_NTZ``).
+        A pyspark session (:func:`local_spark`, :func:`connect_spark`, or one of your own with the
+        same settings: UTC, ``spark.sql.timestampType=TIMESTAMP_NTZ``).
     source
-        The extract (opened with :func:`cohort.source.open_extract`); its CDM tables are staged
-        as Parquet under ``staging`` and registered as temporary views.
+        Where the CDM tables are. With ``reader="duckdb"`` (the default) an extract of any format
+        :func:`cohort.source.open_extract` reads, checked and staged as Parquet under ``staging``
+        (Spark and this process must share the file system: a local session). With
+        ``reader="spark"`` a folder of Parquet tables (``<table>.parquet`` or ``<table>/``) that
+        Spark reads itself, local or remote (``s3a://``, ``hdfs://``); the columns are cast to the
+        CDM types and an absent optional table is an empty view.
     staging
-        A folder for the staged tables (default: a temporary folder removed by :meth:`close`).
+        A folder for the recipes' tables (written as Parquet by Spark, read back as views; default
+        a temporary folder removed by :meth:`close`). With a cluster it must be a path every
+        executor and this process see the same way.
+    database
+        Instead of ``source``: a database of the session's catalog holding the CDM tables
+        (``--schema``).
+    reader
+        ``"duckdb"`` or ``"spark"`` (see ``source``).
 
     Examples
     --------
@@ -86,15 +148,27 @@ class SparkSession:
 
     dialect = "spark"
 
-    def __init__(self, spark: Any, source: str | Path, *, staging: str | Path | None = None) -> None:
-        from cohort._cdm import CDM_TABLES
-        from cohort.source import open_extract
-
+    def __init__(
+        self,
+        spark: Any,
+        source: str | Path | None = None,
+        *,
+        staging: str | Path | None = None,
+        database: str | None = None,
+        reader: str = "duckdb",
+    ) -> None:
         self.spark = spark
         conf = spark.conf
         if conf.get("spark.sql.session.timeZone") != "UTC":
             msg = ("the Spark session's time zone must be UTC (spark.sql.session.timeZone); got "
                    f"{conf.get('spark.sql.session.timeZone')!r}")
+            raise InputError(msg)
+        if (source is None) == (database is None):
+            msg = ("SparkSession needs the CDM tables from exactly one place: a Parquet folder "
+                   "(source, --source) or a catalog database holding them (database, --schema)")
+            raise InputError(msg)
+        if reader not in ("duckdb", "spark"):
+            msg = f"reader must be 'duckdb' or 'spark', got {reader!r}"
             raise InputError(msg)
         self._own_staging = staging is None
         self.staging = Path(tempfile.mkdtemp(prefix="dka-spark-")) if staging is None else Path(staging)
@@ -102,14 +176,118 @@ class SparkSession:
         self.seconds: dict[str, float] = {}
         self._paths: dict[str, Path] = {}
         self._views: set[str] = set()
+        self.cdm_rows: dict[str, int] = {}
         started = time.perf_counter()
+        try:
+            if database is not None:
+                self._from_catalog(database)
+            elif reader == "spark":
+                self._from_parquet(str(source))
+            else:
+                self._from_extract(source)
+        except BaseException:
+            self.close()
+            raise
+        self.seconds["load"] = time.perf_counter() - started
+
+    def _from_extract(self, source: str | Path) -> None:
+        """Stage the extract's typed views (DuckDB reads it) as Parquet; Spark reads the copies."""
+        from cohort._cdm import CDM_TABLES
+        from cohort.source import open_extract
+
         with open_extract(source) as extract:
             for table, columns in CDM_TABLES.items():
                 names = ", ".join(column.name for column in columns)
                 path = self.staging / f"cdm_{table}.parquet"
                 extract.con.execute(f"copy (select {names} from {table}) to '{path}' (format parquet)")
-                self._view(spark.read.parquet(str(path)), table)
-        self.seconds["load"] = time.perf_counter() - started
+                self._view(self.spark.read.parquet(str(path)), table)
+
+    def _typed(self, frame: Any, table: str, where: str) -> Any:
+        """Select the full CDM column list of ``table`` from ``frame`` with the CDM types."""
+        from cohort._cdm import CDM_TABLES
+
+        present = {name.lower(): name for name in frame.columns}
+        lacking = [column.name for column in CDM_TABLES[table] if column.used and column.name not in present]
+        if lacking:
+            msg = (f"{where}: CDM table {table} lacks the column(s) {', '.join(lacking)} the pipeline "
+                   "reads; add them (OMOP CDM v5.4 names)")
+            raise InputError(msg)
+        selects = []
+        for column in CDM_TABLES[table]:
+            kind = _SPARK_TYPES[column.kind]
+            if column.name in present:
+                selects.append(f"cast(`{present[column.name]}` as {kind}) as {column.name}")
+            else:
+                selects.append(f"cast(null as {kind}) as {column.name}")
+        return frame.selectExpr(*selects)
+
+    def _empty(self, table: str) -> Any:
+        from cohort._cdm import CDM_TABLES
+
+        ddl = ", ".join(f"{column.name} {_SPARK_TYPES[column.kind]}" for column in CDM_TABLES[table])
+        return self.spark.createDataFrame([], ddl)
+
+    def _from_parquet(self, folder: str) -> None:
+        """Spark reads ``<folder>/<table>`` or ``<folder>/<table>.parquet`` itself (local or remote paths)."""
+        from cohort._cdm import CDM_TABLES, REQUIRED_TABLES
+
+        base = folder.rstrip("/")
+        local = "://" not in base
+        if local and not Path(base).is_dir():
+            msg = f"--source {folder}: no such folder; give a folder of CDM Parquet tables (<table>.parquet)"
+            raise InputError(msg)
+        missing = []
+        for table in CDM_TABLES:
+            frame = None
+            for candidate in (f"{base}/{table}.parquet", f"{base}/{table}"):
+                if local and not Path(candidate).exists():
+                    continue
+                try:
+                    frame = self.spark.read.parquet(candidate)
+                    break
+                except Exception:  # noqa: BLE001 - not there (remote paths cannot be checked first)
+                    continue
+            if frame is None:
+                if table in REQUIRED_TABLES:
+                    missing.append(table)
+                    continue
+                frame = self._empty(table)
+            else:
+                frame = self._typed(frame, table, f"--source {folder}")
+            self._view(frame, table)
+        if missing:
+            msg = (f"--source {folder} lacks the CDM table(s) {', '.join(missing)} (looked for "
+                   "<table>.parquet and <table>/ of Parquet files); the episodes need "
+                   f"{', '.join(REQUIRED_TABLES)}")
+            raise InputError(msg)
+
+    def _from_catalog(self, database: str) -> None:
+        """Views over ``<database>.<table>`` of the session's catalog, typed as the CDM says."""
+        from cohort._cdm import CDM_TABLES, REQUIRED_TABLES
+
+        catalog = self.spark.catalog
+        try:
+            exists = catalog.databaseExists(database)
+        except Exception:  # noqa: BLE001 - some catalogs cannot say
+            exists = True
+        if not exists:
+            msg = (f"the Spark catalog has no database {database!r} (--schema); give the database "
+                   "holding the CDM tables, or --source a folder of CDM Parquet tables")
+            raise InputError(msg)
+        missing = []
+        for table in CDM_TABLES:
+            if catalog.tableExists(f"{database}.{table}"):
+                frame = self._typed(self.spark.table(f"{database}.{table}"), table, f"database {database}")
+            elif table in REQUIRED_TABLES:
+                missing.append(table)
+                continue
+            else:
+                frame = self._empty(table)
+            self._view(frame, table)
+        if missing:
+            msg = (f"Spark database {database} lacks the CDM table(s) {', '.join(missing)}; the "
+                   f"episodes need {', '.join(REQUIRED_TABLES)}")
+            raise InputError(msg)
 
     def __enter__(self) -> SparkSession:
         return self
@@ -179,6 +357,19 @@ class SparkSession:
         """Rows of ``table``."""
         return int(self.spark.table(table).count())
 
-    def fetch(self, table: str) -> pl.DataFrame:
-        """Table ``table`` as polars (through Arrow)."""
-        return pl.from_arrow(self.spark.table(table).toArrow())  # type: ignore[return-value]
+    def query(self, sql: str, recipe: str = "<query>") -> list[tuple[Any, ...]]:
+        """Rows of a select (written for Spark)."""
+        try:
+            return [tuple(row) for row in self._sql(sql, recipe).collect()]
+        except CohortError:
+            raise
+        except Exception as error:  # noqa: BLE001
+            msg = f"Spark failed running {recipe}: {str(error).strip().splitlines()[0]}"
+            raise CohortError(msg) from None
+
+    def fetch(self, table: str, *, order_by: str | None = None) -> pl.DataFrame:
+        """Table ``table`` as polars (through Arrow); ``order_by`` a column list to sort on."""
+        frame = self.spark.table(table)
+        if order_by:
+            frame = frame.orderBy(*[name.strip() for name in order_by.split(",")])
+        return pl.from_arrow(frame.toArrow())  # type: ignore[return-value]
