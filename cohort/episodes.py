@@ -73,6 +73,8 @@ __all__ = [
     "carried_analytes",
     "EpisodeResult",
     "find_episodes",
+    "attrition_head",
+    "attrition_tail",
     "screen_fragment",
     "build_lab_state",
     "episodes_in_session",
@@ -489,11 +491,45 @@ def episodes_in_session(
         "select count(distinct person_id), count(*) from dka_onset_candidates").fetchall()[0]
     chain = con.execute(
         "select count(distinct person_id), count(*) from dka_episode_chain").fetchall()[0]
-    lower = population.min_age_years
-    upper = population.max_age_years
+    attrition = attrition_tail(definition, candidates, chain, frame)
+    return frame, attrition
+
+
+def attrition_head(persons: int, lab: tuple[int, int], state: tuple[int, int]) -> list[dict[str, Any]]:
+    """The first three attrition steps of every definition (extract, lab results, lab state).
+
+    ``lab`` and ``state`` are (persons, rows). Every engine words its attrition.csv with this
+    function and :func:`attrition_tail`, so the files agree across engines.
+
+    Examples
+    --------
+    >>> [row["name"] for row in attrition_head(10, (8, 120), (3, 40))]
+    ['extract', 'lab_results', 'lab_state']
+    """
+    return [
+        {"name": "extract", "persons": persons, "episodes": None, "rows": persons,
+         "description": "persons in the extract (person rows)"},
+        {"name": "lab_results", "persons": lab[0], "episodes": None, "rows": lab[1],
+         "description": "usable DKA lab results (rows) after the quarantine, and their persons"},
+        {"name": "lab_state", "persons": state[0], "episodes": None, "rows": state[1],
+         "description": ("lab time points of the persons who pass the screen (whose extreme "
+                         "values could meet a diagnosis asked for)")},
+    ]
+
+
+def attrition_tail(definition: Definition, candidates: Sequence[int], chain: Sequence[int],
+                   frame: pl.DataFrame) -> list[dict[str, Any]]:
+    """The last three attrition steps of a definition (diagnosis, episodes, population).
+
+    ``candidates`` and ``chain`` are (persons, rows) of the qualifying time points and of the
+    episode chain; ``frame`` is the definition's episodes after the population's ages.
+    """
+    timing = definition.timing
+    lower = definition.population.min_age_years
+    upper = definition.population.max_age_years
     bounds = (f"{'' if lower is None else f'{lower:g} <= '}age"
               f"{'' if upper is None else f' < {upper:g}'}") if (lower is not None or upper is not None) else "any age"
-    attrition = [
+    return [
         {"name": "meets_diagnosis", "persons": candidates[0], "episodes": None, "rows": candidates[1],
          "description": "lab time points meeting every diagnostic criterion (rows), and their persons"},
         {"name": "episodes", "persons": chain[0], "episodes": chain[1], "rows": None,
@@ -502,7 +538,6 @@ def episodes_in_session(
         {"name": "population", "persons": frame.get_column("person_id").n_unique(), "episodes": frame.height,
          "rows": None, "description": f"episodes with age at onset in the population ({bounds})"},
     ]
-    return frame, attrition
 
 
 def code_episodes_in_session(con: Any) -> pl.DataFrame:
@@ -692,15 +727,7 @@ def find_episodes(
                         for key, value in recipe_seconds.items():
                             steps.seconds[f"{definition.name}:{key}"] = value
                     frames.append(frame)
-                    head = [
-                        {"name": "extract", "persons": persons_total, "episodes": None, "rows": persons_total,
-                         "description": "persons in the extract (person rows)"},
-                        {"name": "lab_results", "persons": lab_persons, "episodes": None, "rows": lab_rows,
-                         "description": "usable DKA lab results (rows) after the quarantine, and their persons"},
-                        {"name": "lab_state", "persons": state_persons, "episodes": None, "rows": rows,
-                         "description": ("lab time points of the persons who pass the screen (whose extreme "
-                                         "values could meet a diagnosis asked for)")},
-                    ]
+                    head = attrition_head(persons_total, (lab_persons, lab_rows), (state_persons, rows))
                     for number, row in enumerate(head + tail, start=1):
                         attrition_rows.append({"definition": definition.name, "step": number, **row})
 

@@ -154,38 +154,6 @@ def _quarantine(session: Any) -> pl.DataFrame:
     return frame.select([pl.col(name).cast(dtype) for name, dtype in schema.items()])
 
 
-def _attrition_head(persons: int, lab: tuple[int, int], state: tuple[int, int]) -> list[dict[str, Any]]:
-    # the same steps, counts and words as cohort.episodes.find_episodes (checked equal by the tests)
-    return [
-        {"name": "extract", "persons": persons, "episodes": None, "rows": persons,
-         "description": "persons in the extract (person rows)"},
-        {"name": "lab_results", "persons": lab[0], "episodes": None, "rows": lab[1],
-         "description": "usable DKA lab results (rows) after the quarantine, and their persons"},
-        {"name": "lab_state", "persons": state[0], "episodes": None, "rows": state[1],
-         "description": ("lab time points of the persons who pass the screen (whose extreme "
-                         "values could meet a diagnosis asked for)")},
-    ]
-
-
-def _attrition_tail(definition: Any, candidates: tuple[int, int], chain: tuple[int, int],
-                    frame: pl.DataFrame) -> list[dict[str, Any]]:
-    # as cohort.episodes.episodes_in_session words them
-    timing = definition.timing
-    lower = definition.population.min_age_years
-    upper = definition.population.max_age_years
-    bounds = (f"{'' if lower is None else f'{lower:g} <= '}age"
-              f"{'' if upper is None else f' < {upper:g}'}") if (lower is not None or upper is not None) else "any age"
-    return [
-        {"name": "meets_diagnosis", "persons": candidates[0], "episodes": None, "rows": candidates[1],
-         "description": "lab time points meeting every diagnostic criterion (rows), and their persons"},
-        {"name": "episodes", "persons": chain[0], "episodes": chain[1], "rows": None,
-         "description": (f"episodes: first qualifying time point after the previous episode's end plus "
-                         f"{timing.episode_gap_hours:g} h")},
-        {"name": "population", "persons": frame.get_column("person_id").n_unique(), "episodes": frame.height,
-         "rows": None, "description": f"episodes with age at onset in the population ({bounds})"},
-    ]
-
-
 # --------------------------------------------------------------------------- entry point
 def find_episodes_on_engine(
     engine: str,
@@ -303,6 +271,8 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
         _load,
         _state_key,
         _Steps,
+        attrition_head,
+        attrition_tail,
     )
 
     started_at = utc_now()
@@ -357,8 +327,8 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
                     chain = _pair(session, "select count(distinct person_id), count(*) from "
                                   "dka_episode_chain", "episode chain")
                 frames.append(frame)
-                head = _attrition_head(persons_total, (lab_persons, rows_used), (state_persons, rows))
-                tail = _attrition_tail(definition, candidates, chain, frame)
+                head = attrition_head(persons_total, (lab_persons, rows_used), (state_persons, rows))
+                tail = attrition_tail(definition, candidates, chain, frame)
                 for number, row in enumerate(head + tail, start=1):
                     attrition_rows.append({"definition": name, "step": number, **row})
         with steps.step("code_finder", "code-based finder"):
