@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import shutil
 import tempfile
+import datetime as dt
 import time
 import weakref
 from collections.abc import Callable
@@ -49,6 +50,8 @@ __all__ = [
     "DATA_QUALITY_REASONS",
     "LabSummary",
     "prepare_lab_events",
+    "lab_slots",
+    "default_as_of",
     "convert",
 ]
 
@@ -110,6 +113,7 @@ QUARANTINE_REASONS: tuple[str, ...] = (
     "before_birth",
     "after_death",
     "outside_observation",
+    "implausible_time",
     "no_value",
     "unit_unknown",
     "implausible",
@@ -149,6 +153,8 @@ class LabSummary:
         lines the extract's vocabulary does not hold.
     seconds
         Wall time of the run.
+    as_of
+        The as-of date the quarantine used (results after it are ``implausible_time``).
     """
 
     rows_read: int
@@ -158,6 +164,7 @@ class LabSummary:
     data_quality: pl.DataFrame
     unresolved_codes: pl.DataFrame
     seconds: float = field(default=0.0)
+    as_of: dt.date | None = field(default=None)
 
     @property
     def reconciles(self) -> bool:
@@ -197,11 +204,36 @@ def _scalar(con: object, sql: str) -> int:
     return int(rows[0][0])
 
 
+def default_as_of() -> dt.date:
+    """Today's date in UTC: the default as-of date of a run (results after it are implausible)."""
+    return dt.datetime.now(dt.timezone.utc).date()
+
+
+def lab_slots(as_of: dt.date | None = None) -> dict[str, object]:
+    """Slot values of the lab recipes (``sql/10`` .. ``sql/22``) for a run as of ``as_of``.
+
+    ``results_before`` is the first moment after the as-of day: a result dated then or later is
+    quarantined as ``implausible_time`` (``sql/20``). A rerun with the same as-of date (it is in
+    the manifest) gives the same quarantine.
+
+    Examples
+    --------
+    >>> lab_slots(dt.date(2026, 12, 2))["results_before"]
+    datetime.datetime(2026, 12, 3, 0, 0)
+    """
+    day = as_of if as_of is not None else default_as_of()
+    if not isinstance(day, dt.date) or isinstance(day, dt.datetime):
+        msg = f"as_of must be a date (datetime.date), got {day!r}"
+        raise InputError(msg)
+    return {"results_before": dt.datetime.combine(day + dt.timedelta(days=1), dt.time())}
+
+
 def prepare_lab_events(
     extract: Extract,
     *,
     codelists: str | Path | CodeLists | None = None,
     on_step: Callable[[str, float], None] | None = None,
+    as_of: dt.date | None = None,
 ) -> LabSummary:
     """Build ``dka_lab_events`` and ``dka_quarantine`` (and the ``dka_concept_*`` tables).
 
@@ -215,6 +247,9 @@ def prepare_lab_events(
     on_step
         Called as ``on_step(name, seconds)`` after each recipe (``name`` is the recipe file) and
         after the reconciliation counts (``"accounting"``); for benchmarks and progress.
+    as_of
+        The run's as-of date (default today, UTC): results dated after it are quarantined as
+        ``implausible_time``, as are results before 1900.
 
     Returns
     -------
@@ -242,16 +277,18 @@ def prepare_lab_events(
     lists = codelists if isinstance(codelists, CodeLists) else read_codelists(codelists)
     con = extract.con
     register_codelists(con, lists)
+    as_of = as_of if as_of is not None else default_as_of()
+    slots = lab_slots(as_of)
     for recipe, target in LAB_RECIPES:
         step_started = time.perf_counter()
         if target in _VIEWS:
             # a filter of dka_measurement_checked: a view saves copying every usable row
             Identifier(target)
-            con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, {})}")
+            con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, slots)}")
         elif target in _STORED:
-            _store(con, _work_catalog(extract), target, render_recipe(recipe, {}))
+            _store(con, _work_catalog(extract), target, render_recipe(recipe, slots))
         else:
-            run_recipe(con, recipe, target, {})
+            run_recipe(con, recipe, target, slots)
         if on_step is not None:
             on_step(recipe, time.perf_counter() - step_started)
 
@@ -297,6 +334,7 @@ def prepare_lab_events(
         data_quality=data_quality,
         unresolved_codes=unresolved,
         seconds=time.perf_counter() - started,
+        as_of=as_of,
     )
     if on_step is not None:
         on_step("accounting", time.perf_counter() - step_started)

@@ -5,6 +5,8 @@ closed set of value types, so no text from a definition file or a command line r
 unchecked:
 
 - ``bool``, ``int`` and ``float`` render as SQL literals (finite numbers only);
+- a :class:`datetime.datetime` renders as ``timestamp 'YYYY-MM-DD HH:MM:SS'`` (no time zone,
+  whole seconds);
 - :class:`Fragment` renders as-is; fragments are made only by the definition compiler from its
   fixed grammar (analyte names from a closed list, operators from a closed list, numbers);
 - :class:`Identifier` renders a table or column name checked against ``[a-z_][a-z0-9_]*``;
@@ -17,6 +19,7 @@ an error.
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 import re
 from collections.abc import Mapping
@@ -52,7 +55,7 @@ class Identifier:
             raise CohortError(msg)
 
 
-SlotValue = bool | int | float | Fragment | Identifier | tuple[str, ...]
+SlotValue = bool | int | float | dt.datetime | Fragment | Identifier | tuple[str, ...]
 
 
 def _literal(name: str, value: object) -> str:
@@ -65,6 +68,11 @@ def _literal(name: str, value: object) -> str:
             msg = f"SQL slot `{name}` must be a finite number, got {value!r}"
             raise CohortError(msg)
         return repr(value)
+    if isinstance(value, dt.datetime):
+        if value.tzinfo is not None or value.microsecond:
+            msg = f"SQL slot `{name}` takes a naive datetime in whole seconds, got {value!r}"
+            raise CohortError(msg)
+        return f"timestamp '{value:%Y-%m-%d %H:%M:%S}'"
     if isinstance(value, Fragment):
         return value.sql
     if isinstance(value, Identifier):

@@ -36,6 +36,7 @@ tables ``sql/44`` reads to the persons still followed and their later rows
 
 from __future__ import annotations
 
+import datetime as dt
 import time
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -635,6 +636,7 @@ def find_episodes(
     threads: int | None = None,
     memory_limit: str | None = None,
     progress: bool = False,
+    as_of: dt.date | None = None,
 ) -> EpisodeResult:
     """Find DKA episodes by one or more lab-based definitions, and compare them with the codes.
 
@@ -658,6 +660,9 @@ def find_episodes(
         DuckDB settings (``threads=2``, ``memory_limit="4GB"``).
     progress
         Show progress on standard error (rich).
+    as_of
+        The run's as-of date (default today, UTC); lab results dated after it, or before 1900,
+        are quarantined as ``implausible_time``. Recorded in the manifest (``parameters.as_of``).
 
     Returns
     -------
@@ -705,7 +710,7 @@ def find_episodes(
                     con.execute("set memory_limit = ?", [str(memory_limit)])
         try:
             with steps.step("lab_events", "harmonising lab results"):
-                summary = prepare_lab_events(extract, codelists=codelists)
+                summary = prepare_lab_events(extract, codelists=codelists, as_of=as_of)
             with steps.step("person_diabetes", "diabetes records"):
                 run_recipe(con, "30_person_diabetes.sql", "dka_person_diabetes", {})
             persons_total = extract.row_count("person")
@@ -754,6 +759,7 @@ def find_episodes(
                 "threads": threads,
                 "memory_limit": memory_limit,
                 "out": str(target) if target else None,
+                "as_of": summary.as_of.isoformat() if summary.as_of is not None else None,
             }
             counts = {
                 "measurement_rows_read": summary.rows_read,

@@ -17,6 +17,7 @@ the stage that made it.
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 import shutil
 import tempfile
@@ -313,6 +314,7 @@ def _rerun_episodes(folder: Path, source: Path, into: Path, notes: list[str], **
         codelists=_codelists(manifest, notes),
         threads=engine.get("threads") or parameters.get("threads"),
         memory_limit=engine.get("memory_limit") or parameters.get("memory_limit"),
+        as_of=dt.date.fromisoformat(parameters["as_of"]) if parameters.get("as_of") else None,
     )
     return into
 

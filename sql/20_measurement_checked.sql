@@ -21,11 +21,14 @@
 --   4 after_death          on a day after the death date (results until the end of the death
 --                          day are kept: the death record's time is often missing or rounded)
 --   5 outside_observation  the day is covered by no observation period
---   6 no_value             no value_as_number and no ordinal answer
---   7 unit_unknown         the unit is not listed for the analyte in units.csv
---   8 implausible          canonical value outside units.csv low..high (or a urine ketone number
+--   6 implausible_time     before 1900-01-01, or on or after the slot results_before: the day after
+--                          the run's as-of date (a result from the future is a clock or placeholder
+--                          error; the as-of date is in the manifest so that a rerun uses it)
+--   7 no_value             no value_as_number and no ordinal answer
+--   8 unit_unknown         the unit is not listed for the analyte in units.csv
+--   9 implausible          canonical value outside units.csv low..high (or a urine ketone number
 --                          that is not a whole ordinal)
---   9 duplicate            same person, concept, datetime, unit and value as a row with a lower
+--  10 duplicate            same person, concept, datetime, unit and value as a row with a lower
 --                          measurement_id (that row is kept)
 with
 
@@ -351,6 +354,8 @@ reasoned as (
             when measurement_datetime < birth_datetime then 'before_birth'
             when cast(measurement_datetime as date) > death_date then 'after_death'
             when observed_person_id is null then 'outside_observation'
+            when measurement_datetime < timestamp '1900-01-01 00:00:00'
+                or measurement_datetime >= {{ results_before }} then 'implausible_time'
             when ordinal is null and value_as_number is null then 'no_value'
             when ordinal is null and unit_rule_analyte is null then 'unit_unknown'
             when value < low or value > high then 'implausible'
@@ -381,6 +386,8 @@ final as (
                 || ', after the death date ' || cast(death_date as varchar)
             when 'outside_observation' then 'no observation period covers '
                 || cast(cast(measurement_datetime as date) as varchar)
+            when 'implausible_time' then 'measured ' || cast(measurement_datetime as varchar)
+                || ', before 1900-01-01 or after the as-of date'
             when 'no_value' then 'no value_as_number and no ordinal answer'
             when 'unit_unknown' then 'unit_concept_id ' || coalesce(cast(unit_concept_id as varchar), '0')
                 || ' (unit_source_value ' || coalesce('''' || unit_source_value || '''', 'null')

@@ -622,7 +622,6 @@ def _future_in_open_period() -> MiniCdm:
     return cdm
 
 
-@pytest.mark.xfail(strict=True, reason="needs reason implausible_time in sql/20")
 def test_impossible_times_inside_observation_are_quarantined(tmp_path: Path) -> None:
     """A result after the run date or before 1900 cannot be a DKA lab result of this era."""
     path = _write(_future_in_open_period().tables(), tmp_path / "extract", "parquet")

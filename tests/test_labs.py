@@ -184,6 +184,12 @@ def test_every_quarantine_reason(tmp_path: Path) -> None:
     expected[cdm.lab(3, "14749-6", 20.0, unit="mmol/L", at="2021-06-01 10:00")] = "outside_observation"
     kept.append(cdm.lab(3, "14749-6", 20.0, unit="mmol/L", at="2022-06-30 23:59"))
     kept.append(cdm.lab(3, "14749-6", 20.0, unit="mmol/L", at="2020-01-01 00:00"))
+    # an observation period reaching from the 1880s into the next century: results before 1900
+    # and after the run's as-of date (today) are clock or placeholder errors (common practice)
+    cdm.person(4, birth="1880-01-01", observation=("1880-01-01", "2199-12-31"))
+    expected[cdm.lab(4, "14749-6", 20.0, unit="mmol/L", at="1899-12-31 23:59")] = "implausible_time"
+    kept.append(cdm.lab(4, "14749-6", 20.0, unit="mmol/L", at="1900-01-01 00:00"))
+    expected[cdm.lab(4, "14749-6", 20.0, unit="mmol/L", at="2199-01-01 00:00")] = "implausible_time"
     expected[cdm.lab(1, "14749-6", None, unit="mmol/L", at="2024-03-01 09:10")] = "no_value"
     expected[cdm.lab(1, "1963-8", None, unit=None, at="2024-03-01 09:10", value_as="<5")] = "no_value"
     expected[cdm.lab(1, "14749-6", 25.0, unit=None, at="2024-03-01 09:20")] = "unit_unknown"
@@ -394,3 +400,21 @@ def test_running_twice_gives_the_same_tables(tmp_path: Path) -> None:
     assert _events(extract) == events
     assert second.data_quality.equals(first.data_quality)
     assert (second.rows_used, second.rows_quarantined) == (first.rows_used, first.rows_quarantined)
+
+
+def test_as_of_date_bounds_results_in_time(tmp_path: Path) -> None:
+    """The as-of day is kept whole; the next day's first second is implausible_time."""
+    import datetime as dt
+
+    cdm = MiniCdm()
+    cdm.person(1, birth="1980-05-01", observation=("2000-01-01", "2099-12-31"))
+    last = cdm.lab(1, "14749-6", 20.0, unit="mmol/L", at="2026-06-30 23:59")
+    after = cdm.lab(1, "14749-6", 20.0, unit="mmol/L", at="2026-07-01 00:00")
+    path = cdm.write(tmp_path / "x", fmt="parquet")
+    with open_extract(path) as extract:
+        summary = prepare_lab_events(extract, as_of=dt.date(2026, 6, 30))
+        assert _reasons(extract) == {after: "implausible_time"}
+        assert [row[1] for row in _events(extract)] == [last]
+        detail = extract.con.execute("select detail from dka_quarantine").fetchall()[0][0]
+    assert detail == "measured 2026-07-01 00:00:00, before 1900-01-01 or after the as-of date"
+    assert summary.as_of == dt.date(2026, 6, 30)

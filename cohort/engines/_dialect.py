@@ -694,7 +694,7 @@ def recipe_values(definitions: Any | Sequence[Any]) -> dict[str, dict[str, Any]]
     Returns
     -------
     dict
-        ``{"state": {...}, "<definition name>": {...}}``: the slots of ``sql/31`` and, per
+        ``{"state": {...}, "<definition name>": {...}}``: the slots of the lab recipes and ``sql/31`` and, per
         definition, the slots of ``sql/40`` .. ``sql/46``.
     """
     from cohort._compile import compile_criterion, compile_severity
@@ -709,7 +709,10 @@ def recipe_values(definitions: Any | Sequence[Any]) -> dict[str, dict[str, Any]]
 
     items = [definitions] if not isinstance(definitions, (list, tuple)) else list(definitions)
     loaded = [_definition(item) for item in items]
-    state: dict[str, Any] = dict(_state_slots(loaded))
+    from cohort._labs import lab_slots
+
+    # the lab recipes' slot (results_before, as of today) rides along, so every recipe renders
+    state: dict[str, Any] = {**lab_slots(), **_state_slots(loaded)}
     state["person_screen"] = screen_fragment([item.diagnosis for item in loaded])
     out: dict[str, dict[str, Any]] = {"state": state}
     for definition in loaded:

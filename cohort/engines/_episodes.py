@@ -253,6 +253,7 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
                    overrides: Mapping[str, object] | None, quiet: bool) -> Any:
     from cohort._agreement import agreement_table
     from cohort._codelists import read_codelists
+    from cohort._labs import default_as_of
     from cohort._manifest import build_manifest, utc_now, write_manifest
     from cohort.engines._dialect import recipe_values
     from cohort.engines._run import (
@@ -291,7 +292,8 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
                                           spark_master=spark_master, source=source, staging=staging)
         with steps.step("lab_events", f"harmonising lab results ({engine})"):
             session.register_codelists(lists)
-            run_lab_steps(session)
+            as_of = default_as_of()
+            run_lab_steps(session, as_of=as_of)
             rows_read = _scalar(session, "select count(*) from measurement", "measurement rows")
             lab_persons, rows_used = _pair(
                 session, "select count(distinct person_id), count(*) from dka_lab_events", "lab events")
@@ -356,6 +358,7 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
             "schema": schema if engine == "postgres" or source is None else None,
             "spark_master": spark_master if engine == "spark" else None,
             "out": str(target) if target else None,
+            "as_of": as_of.isoformat(),
         }
         counts = {
             "measurement_rows_read": rows_read,

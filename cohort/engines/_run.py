@@ -151,13 +151,19 @@ def _stop(recipe: str, until: str | None) -> bool:
     return until is not None and recipe[:2] > until
 
 
-def run_lab_steps(session: EngineSession, *, until: str | None = None) -> list[str]:
-    """Recipes 10 .. 22 (lab events, quarantine) and 30 (known diabetes); code lists registered first."""
+def run_lab_steps(session: EngineSession, *, until: str | None = None, as_of: Any = None) -> list[str]:
+    """Recipes 10 .. 22 (lab events, quarantine) and 30 (known diabetes); code lists registered first.
+
+    ``as_of`` is the run's as-of date (default today, UTC; :func:`cohort._labs.lab_slots`).
+    """
+    from cohort._labs import lab_slots
+
+    slots = lab_slots(as_of)
     made: list[str] = []
     for recipe, target in (*_lab_recipes(), ("30_person_diabetes.sql", "dka_person_diabetes")):
         if _stop(recipe, until):
             break
-        session.materialise(target, render_for(session.dialect, recipe, {}))
+        session.materialise(target, render_for(session.dialect, recipe, slots))
         made.append(target)
     return made
 
