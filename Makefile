@@ -27,7 +27,7 @@ test-all: $(STAMP)
 	$(BIN)/python -m pytest -q
 
 bench: $(STAMP)
-	$(BIN)/python benchmarks/run_all.py --persons $${BENCH_PERSONS:-1000000}
+	$(BIN)/python benchmarks/run_all.py --persons $${BENCH_PERSONS:-1000000} --root $${BENCH_ROOT:-bench-output}
 
 clean:
 	rm -rf $(VENV) $(DEMO_DIR) build dist .pytest_cache

@@ -60,6 +60,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--dsn", help="an existing PostgreSQL server (default: start one)")
     parser.add_argument("--cores", type=int, default=2)
     parser.add_argument("--threads", type=int, default=2, help="DuckDB threads")
+    parser.add_argument("--spark-memory", default="4g",
+                        help="Spark driver memory (default 4g; 2g lost a fetched result at 100,000 persons)")
     args = parser.parse_args(argv)
     engines = [name.strip() for name in args.engines.split(",") if name.strip()]
 
@@ -108,7 +110,7 @@ def main(argv: list[str] | None = None) -> int:
             from cohort.engines import SparkSession, local_spark
 
             started = time.perf_counter()
-            spark = local_spark(cores=args.cores, memory="2g", app="dka-cohort-bench")
+            spark = local_spark(cores=args.cores, memory=args.spark_memory, app="dka-cohort-bench")
             boot = time.perf_counter() - started
             try:
                 started = time.perf_counter()
@@ -117,6 +119,8 @@ def main(argv: list[str] | None = None) -> int:
                     started = time.perf_counter()
                     made = run_recipes(session, args.definition)
                     run = time.perf_counter() - started
+                    print(f"spark: staging {load:.1f} s, recipes {run:.1f} s; fetching {len(made)} tables to compare",
+                          flush=True)
                     tables = {table: session.fetch(table) for table in made}
                 faults = compare_runs(reference, tables)
                 lines.append(_row("spark", load, run, events,
@@ -125,7 +129,9 @@ def main(argv: list[str] | None = None) -> int:
             finally:
                 spark.stop()
 
-    print(f"extract: {extract}  definition: {args.definition}  lab events: {events:,}")
+    one, five, fifteen = os.getloadavg()
+    print(f"extract: {extract}  definition: {args.definition}  lab events: {events:,}  "
+          f"(load average {one:.1f} / {five:.1f} / {fifteen:.1f} on {os.cpu_count()} cores)")
     print(f"{'engine':<11} {'load s':>8} {'run s':>8} {'events/s (run)':>14}  same tables as DuckDB")
     for line in lines:
         print(line)
