@@ -158,3 +158,20 @@ def test_loader_sql_parses_for_postgres_and_spark():
         assert tree.find(sqlglot.exp.Star) is None, name
         for dialect in ("postgres", "spark"):
             assert sqlglot.transpile(text, read="duckdb", write=dialect), (name, dialect)
+
+
+def test_features_take_the_as_of_date_of_the_episodes_run(tmp_path) -> None:
+    # the lab quarantine of the feature stage must match the episodes run's (implausible_time is
+    # relative to the run's as-of date), so run_features reads it from the episodes manifest
+    import datetime as dt
+    import json
+
+    from cohort.features._build import _episodes_as_of
+
+    folder = tmp_path / "episodes"
+    folder.mkdir()
+    (folder / "manifest.json").write_text(json.dumps({"parameters": {"as_of": "2026-06-30"}}))
+    assert _episodes_as_of(folder / "episodes.parquet") == dt.date(2026, 6, 30)
+    (folder / "manifest.json").write_text(json.dumps({"parameters": {}}))
+    assert _episodes_as_of(folder / "episodes.parquet") is None
+    assert _episodes_as_of(None) is None

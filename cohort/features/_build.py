@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import datetime as dt
+import json
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -157,6 +159,18 @@ def write_features(tables: FeatureTables, out: Path | str) -> dict[str, Path]:
     return {name: folder / path.name for name, path in written.items()}
 
 
+def _episodes_as_of(episodes_path: Path | None) -> dt.date | None:
+    """The as-of date the episodes run used (its manifest's ``parameters.as_of``), if recorded."""
+    if episodes_path is None:
+        return None
+    manifest = episodes_path.parent / "manifest.json"
+    try:
+        recorded = json.loads(manifest.read_text(encoding="utf-8")).get("parameters", {}).get("as_of")
+        return dt.date.fromisoformat(recorded) if recorded else None
+    except (OSError, ValueError, AttributeError):
+        return None  # an episodes file without (a readable) manifest: lab events as of today
+
+
 def run_features(
     episodes: Path | str | pl.DataFrame,
     source: object,
@@ -221,13 +235,14 @@ def run_features(
             )
             raise InputError(msg)
         frame = pl.read_parquet(episodes_path)
+    as_of = _episodes_as_of(episodes_path)
     options = options or FeatureOptions()
     if isinstance(source, Extract):
-        inputs = load_feature_inputs(source, frame, options=options)
+        inputs = load_feature_inputs(source, frame, options=options, as_of=as_of)
         fingerprint = source.fingerprint() if out is not None else None
     else:
         with open_extract(source, threads=threads, memory_limit=memory_limit) as extract:
-            inputs = load_feature_inputs(extract, frame, options=options)
+            inputs = load_feature_inputs(extract, frame, options=options, as_of=as_of)
             fingerprint = extract.fingerprint() if out is not None else None
     tables = build_features(frame, inputs, options=options)
     if out is not None:

@@ -13,6 +13,8 @@ session as ``dka_feature_persons`` for the duration of the load.
 
 from __future__ import annotations
 
+import datetime as dt
+
 import polars as pl
 
 from cohort._errors import InputError, SchemaError
@@ -558,6 +560,7 @@ def load_feature_inputs(
     episodes: pl.DataFrame,
     *,
     options: FeatureOptions | None = None,
+    as_of: dt.date | None = None,
 ) -> FeatureInputs:
     """Pull the frames the feature builders need from an opened extract.
 
@@ -574,6 +577,9 @@ def load_feature_inputs(
         Episodes as in episodes.parquet.
     options
         Feature options (the HbA1c look-back widens the lab span); defaults when None.
+    as_of
+        The as-of date for the lab quarantine when lab events are prepared here (the episodes
+        run's, from its manifest); today when None.
 
     Returns
     -------
@@ -598,7 +604,7 @@ def load_feature_inputs(
     if not _has_table(con, "dka_lab_events"):
         from cohort._labs import prepare_lab_events
 
-        prepare_lab_events(extract)
+        prepare_lab_events(extract, as_of=as_of)  # the episodes run's as-of date, when known
     for table in ("dka_concept_drug", "dka_concept_route", "dka_concept_visit", "dka_concept_condition"):
         if not _has_table(con, table):
             msg = (
