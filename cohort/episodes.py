@@ -75,6 +75,7 @@ __all__ = [
     "EpisodeResult",
     "find_episodes",
     "attrition_head",
+    "with_episode_ids",
     "attrition_tail",
     "screen_fragment",
     "build_lab_state",
@@ -479,13 +480,7 @@ def episodes_in_session(
     run("46_episodes.sql", "dka_episodes")
 
     frame = con.sql("select * from dka_episodes order by person_id, onset_datetime").pl()
-    frame = frame.with_columns(
-        pl.lit(name).alias("definition"),
-        pl.concat_str([
-            pl.lit(f"{name}:"), pl.col("person_id").cast(pl.String), pl.lit(":"),
-            pl.col("onset_datetime").dt.strftime("%Y%m%d%H%M%S"),
-        ]).alias("episode_id"),
-    )
+    frame = with_episode_ids(frame, name)
     frame = _conform(frame, _EPISODE_SCHEMA)
 
     candidates = con.execute(
@@ -494,6 +489,25 @@ def episodes_in_session(
         "select count(distinct person_id), count(*) from dka_episode_chain").fetchall()[0]
     attrition = attrition_tail(definition, candidates, chain, frame)
     return frame, attrition
+
+
+def with_episode_ids(frame: pl.DataFrame, definition: str) -> pl.DataFrame:
+    """Add ``definition`` and ``episode_id`` (``<definition>:<person_id>:<onset YYYYMMDDhhmmss>``).
+
+    Examples
+    --------
+    >>> import datetime as dt
+    >>> frame = pl.DataFrame({"person_id": [7], "onset_datetime": [dt.datetime(2024, 3, 1, 9, 30)]})
+    >>> with_episode_ids(frame, "consensus-2024")["episode_id"].to_list()
+    ['consensus-2024:7:20240301093000']
+    """
+    return frame.with_columns(
+        pl.lit(definition).alias("definition"),
+        pl.concat_str([
+            pl.lit(f"{definition}:"), pl.col("person_id").cast(pl.String), pl.lit(":"),
+            pl.col("onset_datetime").dt.strftime("%Y%m%d%H%M%S"),
+        ]).alias("episode_id"),
+    )
 
 
 def attrition_head(persons: int, lab: tuple[int, int], state: tuple[int, int]) -> list[dict[str, Any]]:
@@ -545,13 +559,7 @@ def code_episodes_in_session(con: Any) -> pl.DataFrame:
     """Run the code-based finder (``sql/50``) and return its episodes, one per visit."""
     run_recipe(con, "50_code_episodes.sql", "dka_code_episodes", {})
     frame = con.sql("select * from dka_code_episodes order by person_id, onset_datetime").pl()
-    frame = frame.with_columns(
-        pl.lit(CODE_FINDER).alias("definition"),
-        pl.concat_str([
-            pl.lit(f"{CODE_FINDER}:"), pl.col("person_id").cast(pl.String), pl.lit(":"),
-            pl.col("onset_datetime").dt.strftime("%Y%m%d%H%M%S"),
-        ]).alias("episode_id"),
-    )
+    frame = with_episode_ids(frame, CODE_FINDER)
     return _conform(frame, _CODE_SCHEMA)
 
 

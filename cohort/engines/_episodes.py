@@ -135,16 +135,9 @@ def _data_quality(session: Any) -> pl.DataFrame:
 
 
 def _code_episodes(frame: pl.DataFrame) -> pl.DataFrame:
-    from cohort.episodes import _CODE_SCHEMA, CODE_FINDER, _conform
+    from cohort.episodes import _CODE_SCHEMA, CODE_FINDER, _conform, with_episode_ids
 
-    frame = frame.sort(["person_id", "onset_datetime"]).with_columns(
-        pl.lit(CODE_FINDER).alias("definition"),
-        pl.concat_str([
-            pl.lit(f"{CODE_FINDER}:"), pl.col("person_id").cast(pl.String), pl.lit(":"),
-            pl.col("onset_datetime").dt.strftime("%Y%m%d%H%M%S"),
-        ]).alias("episode_id"),
-    )
-    return _conform(frame, _CODE_SCHEMA)
+    return _conform(with_episode_ids(frame.sort(["person_id", "onset_datetime"]), CODE_FINDER), _CODE_SCHEMA)
 
 
 def _quarantine(session: Any) -> pl.DataFrame:

@@ -370,18 +370,12 @@ def episodes_from_tables(dka_episodes: pl.DataFrame, definition: Any) -> pl.Data
     ``find_episodes(...).episodes`` for the same definition.
     """
     from cohort.engines._dialect import _definition
-    from cohort.episodes import _EPISODE_SCHEMA, _conform
+    from cohort.episodes import _EPISODE_SCHEMA, _conform, with_episode_ids
 
     name = _definition(definition).name
     frame = dka_episodes.with_columns(
         [pl.col(column).cast(pl.Float64) for column, dtype in dka_episodes.schema.items()
          if str(dtype).startswith("Decimal")]
     ).sort(["person_id", "onset_datetime"])
-    frame = frame.with_columns(
-        pl.lit(name).alias("definition"),
-        pl.concat_str([
-            pl.lit(f"{name}:"), pl.col("person_id").cast(pl.String), pl.lit(":"),
-            pl.col("onset_datetime").dt.strftime("%Y%m%d%H%M%S"),
-        ]).alias("episode_id"),
-    )
+    frame = with_episode_ids(frame, name)
     return _conform(frame, _EPISODE_SCHEMA)
