@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import argparse
 import sys
-import warnings
 import time
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
