@@ -32,7 +32,7 @@ import tempfile
 import datetime as dt
 import time
 import weakref
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -51,6 +51,7 @@ __all__ = [
     "LabSummary",
     "prepare_lab_events",
     "lab_slots",
+    "data_quality_frame",
     "default_as_of",
     "convert",
 ]
@@ -228,6 +229,35 @@ def lab_slots(as_of: dt.date | None = None) -> dict[str, object]:
     return {"results_before": dt.datetime.combine(day + dt.timedelta(days=1), dt.time())}
 
 
+def data_quality_frame(counts: Iterable[tuple[object, object, object]]) -> pl.DataFrame:
+    """data_quality.csv from (source_table, reason, rows) counts of ``dka_quarantine``.
+
+    Every (table, reason) of :data:`DATA_QUALITY_REASONS` is listed in order, zeros included; a
+    pair the list does not hold is an error (the recipes and the list are kept together). Every
+    engine builds its data_quality.csv with this function.
+
+    Examples
+    --------
+    >>> frame = data_quality_frame([("measurement", "duplicate", 3)])
+    >>> frame.filter(pl.col("rows") > 0).rows()
+    [('measurement', 'duplicate', 3)]
+    """
+    counted = {(str(table), str(reason)): int(rows) for table, reason, rows in counts}  # type: ignore[call-overload]
+    listed = [(table, reason) for table, reasons in DATA_QUALITY_REASONS.items() for reason in reasons]
+    unknown = sorted(set(counted) - set(listed))
+    if unknown:
+        msg = f"dka_quarantine holds (table, reason) pairs cohort._labs does not list: {unknown}"
+        raise CohortError(msg)
+    return pl.DataFrame(
+        {
+            "table": [table for table, _ in listed],
+            "reason": [reason for _, reason in listed],
+            "rows": [counted.get(pair, 0) for pair in listed],
+        },
+        schema={"table": pl.String, "reason": pl.String, "rows": pl.Int64},
+    )
+
+
 def prepare_lab_events(
     extract: Extract,
     *,
@@ -307,22 +337,9 @@ def prepare_lab_events(
         "on lab_concepts.concept_id = per_concept.measurement_concept_id "
         "where lab_concepts.concept_id is null",
     )
-    counted = {(str(table), str(reason)): int(rows) for table, reason, rows in con.execute(
+    data_quality = data_quality_frame(con.execute(
         "select source_table, reason, count(*) from dka_quarantine "
-        "group by source_table, reason").fetchall()}
-    listed = [(table, reason) for table, reasons in DATA_QUALITY_REASONS.items() for reason in reasons]
-    unknown = sorted(set(counted) - set(listed))
-    if unknown:  # pragma: no cover - the recipes and this list are kept together
-        msg = f"dka_quarantine holds (table, reason) pairs this module does not list: {unknown}"
-        raise CohortError(msg)
-    data_quality = pl.DataFrame(
-        {
-            "table": [table for table, _ in listed],
-            "reason": [reason for _, reason in listed],
-            "rows": [counted.get(pair, 0) for pair in listed],
-        },
-        schema={"table": pl.String, "reason": pl.String, "rows": pl.Int64},
-    )
+        "group by source_table, reason").fetchall())
     unresolved = con.sql(
         "select codelist, line, vocabulary_id, concept_code, description "
         "from dka_codelist_unresolved order by codelist, line").pl()

@@ -117,21 +117,11 @@ def _engine_fingerprint(session: Any, engine: str, *, dsn: str | None, schema: s
 
 # --------------------------------------------------------------------------- tables to the contract
 def _data_quality(session: Any) -> pl.DataFrame:
-    from cohort._labs import DATA_QUALITY_REASONS
+    from cohort._labs import data_quality_frame
 
-    counted = {(str(table), str(reason)): int(rows) for table, reason, rows in _query(
+    return data_quality_frame(_query(
         session, "select source_table, reason, count(*) as rows from dka_quarantine "
-        "group by source_table, reason", "data quality counts")}
-    listed = [(table, reason) for table, reasons in DATA_QUALITY_REASONS.items() for reason in reasons]
-    unknown = sorted(set(counted) - set(listed))
-    if unknown:
-        msg = f"dka_quarantine holds (table, reason) pairs cohort._labs does not list: {unknown}"
-        raise CohortError(msg)
-    return pl.DataFrame(
-        {"table": [table for table, _ in listed], "reason": [reason for _, reason in listed],
-         "rows": [counted.get(pair, 0) for pair in listed]},
-        schema={"table": pl.String, "reason": pl.String, "rows": pl.Int64},
-    )
+        "group by source_table, reason", "data quality counts"))
 
 
 def _code_episodes(frame: pl.DataFrame) -> pl.DataFrame:
