@@ -1,9 +1,11 @@
-"""Harmonised lab events and the quarantine: run recipes 10 .. 22 and account for every row.
+"""Harmonised lab events and the quarantine: run recipes 10 .. 23 and account for every row.
 
 :func:`prepare_lab_events` loads the code lists, resolves them through the extract's vocabulary
-(``sql/10`` .. ``sql/19``), checks every measurement row of a DKA analyte (``sql/20``), and leaves
-``dka_lab_events`` (usable results in canonical units) and ``dka_quarantine`` (every excluded row
-with one reason) in the session, together with the ``dka_concept_*`` tables later recipes use.
+(``sql/10`` .. ``sql/19``), finds repeated rows (``sql/18``), checks every measurement row of a DKA
+analyte (``sql/20``), and leaves ``dka_lab_events`` (usable results in canonical units),
+``dka_quarantine`` (every excluded row with one reason) and ``dka_lab_points`` (the usable results
+gathered by person and time point, which every definition's lab state reads) in the session,
+together with the ``dka_concept_*`` tables later recipes use.
 
 ``dka_quarantine`` also lists intravenous regular-insulin ``drug_exposure`` rows that cannot be
 placed in time (no start datetime, end before start, unknown person); ``data_quality`` counts
@@ -11,13 +13,14 @@ every (table, reason) of :data:`DATA_QUALITY_REASONS`, zeros included.
 
 The reconciliation identity is checked on every run, from counts taken independently::
 
-    rows read (measurement row count) = rows used (dka_lab_events)
+    rows read (measurement row count) = rows used (dka_lab_points, sum of results)
                                       + rows quarantined (dka_quarantine, measurement rows)
                                       + rows of other analytes (concept not in dka_concept_lab)
 
-``dka_measurement_checked`` (tens of millions of rows at a million persons) is kept compressed in
-a scratch database file behind a temporary view (:func:`_work_catalog`, :func:`_store`);
-``dka_lab_events`` is a view of its usable rows. ``on_step`` reports each recipe's time
+``dka_measurement_checked`` (tens of millions of rows at a million persons) and ``dka_lab_events``
+(its usable rows) are temporary views, read by ``sql/22`` and ``sql/23``; ``dka_lab_points`` is
+kept compressed in a scratch database file behind a temporary view (:func:`_work_catalog`,
+:func:`_store`). On other engines every recipe is a table. ``on_step`` reports each recipe's time
 (``benchmarks/bench_labs.py``). ``rows_other`` is counted per concept from the one column
 ``measurement_concept_id``, not by joining every measurement row.
 
@@ -65,20 +68,24 @@ LAB_RECIPES: tuple[tuple[str, str], ...] = (
     ("14_concept_route.sql", "dka_concept_route"),
     ("15_concept_visit.sql", "dka_concept_visit"),
     ("16_concept_ketone.sql", "dka_concept_ketone"),
+    ("18_measurement_duplicates.sql", "dka_measurement_duplicates"),
     ("19_codelist_unresolved.sql", "dka_codelist_unresolved"),
     ("20_measurement_checked.sql", "dka_measurement_checked"),
     ("21_lab_events.sql", "dka_lab_events"),
     ("22_quarantine.sql", "dka_quarantine"),
+    ("23_lab_points.sql", "dka_lab_points"),
 )
 
-#: Session objects made as temporary views rather than tables (same columns, same name).
-_VIEWS = frozenset({"dka_lab_events"})
+#: Session objects made as temporary views rather than tables (same columns, same name): every
+#: measurement row of a DKA analyte (about 57 million rows at a million persons) is checked by a
+#: scan with hash joins to small tables, read twice (the quarantine, the time points); writing the
+#: checked rows once cost more than both readings (20 s of 44 s at a million persons).
+_VIEWS = frozenset({"dka_measurement_checked", "dka_lab_events"})
 
-#: Session tables stored compressed in a scratch database file (see :func:`_work_catalog`): every
-#: measurement row of a DKA analyte, about 56 million rows at a million persons, which take some
-#: 90 bytes a row as an uncompressed temporary table (5 GB, spilled under a 3 GB memory limit)
-#: and about 10 as compressed row groups; a temporary view of the same name reads it.
-_STORED = frozenset({"dka_measurement_checked"})
+#: Session tables stored compressed in a scratch database file (see :func:`_work_catalog`): the
+#: time points (about 11 million rows at a million persons, mostly null columns, which compress to
+#: little in a database file and take some 2 GB as an uncompressed temporary table).
+_STORED = frozenset({"dka_lab_points"})
 
 #: Name of the attached scratch database holding the :data:`_STORED` tables.
 _WORK = "dka_work"
@@ -312,7 +319,7 @@ def prepare_lab_events(
     for recipe, target in LAB_RECIPES:
         step_started = time.perf_counter()
         if target in _VIEWS:
-            # a filter of dka_measurement_checked: a view saves copying every usable row
+            # read by the next recipes only: a view saves writing every checked row
             Identifier(target)
             con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, slots)}")
         elif target in _STORED:
@@ -324,7 +331,8 @@ def prepare_lab_events(
 
     step_started = time.perf_counter()
     rows_read = extract.row_count("measurement")
-    rows_used = _scalar(con, "select count(*) from dka_lab_events")
+    # the usable rows as sql/23 counted them at their time points (no third reading of the rows)
+    rows_used = _scalar(con, "select coalesce(sum(results), 0) from dka_lab_points")
     rows_quarantined = _scalar(
         con, "select count(*) from dka_quarantine where source_table = 'measurement'")
     # counted from measurement itself, one group per concept (a single narrow column), independently

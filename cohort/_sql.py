@@ -32,6 +32,8 @@ from cohort._paths import sql_dir
 __all__ = ["Fragment", "Identifier", "recipe_names", "render", "render_recipe", "run_recipe"]
 
 _SLOT = re.compile(r"\{\{\s*([a-z_][a-z0-9_]*)\s*\}\}")
+#: A macro call ``{{ name(key=value, ...) }}`` (cohort._macros); may span lines.
+_MACRO = re.compile(r"\{\{\s*([a-z_][a-z0-9_]*)\(([^(){}]*)\)\s*\}\}", re.S)
 _IDENT = re.compile(r"^[a-z_][a-z0-9_]*$")
 _WORD = re.compile(r"^[a-z0-9_]+$")
 
@@ -93,7 +95,8 @@ def _literal(name: str, value: object) -> str:
     raise CohortError(msg)
 
 
-def render(text: str, values: Mapping[str, SlotValue], *, recipe: str = "<text>") -> str:
+def render(text: str, values: Mapping[str, SlotValue], *, recipe: str = "<text>",
+           dialect: str = "duckdb") -> str:
     """Fill the ``{{ slot }}`` markers of a recipe.
 
     Parameters
@@ -104,6 +107,9 @@ def render(text: str, values: Mapping[str, SlotValue], *, recipe: str = "<text>"
         A value for every slot in the text, and no others.
     recipe
         The recipe's name, for error messages.
+    dialect
+        The engine the text is written for; macro calls (:mod:`cohort._macros`) expand to that
+        engine's form. Slots themselves render the same for every engine.
 
     Returns
     -------
@@ -115,12 +121,29 @@ def render(text: str, values: Mapping[str, SlotValue], *, recipe: str = "<text>"
     >>> render("select {{ hours }} as h", {"hours": 6})
     'select 6 as h'
     """
+    from cohort._macros import expand
+
+    try:
+        text = _MACRO.sub(lambda match: expand(match.group(1), match.group(2), values, dialect), text)
+    except CohortError as error:
+        raise CohortError(f"recipe {recipe}: {error}") from None
     wanted = set(_SLOT.findall(text))
     missing = sorted(wanted - set(values))
     if missing:
         msg = f"recipe {recipe}: no value given for slot(s) {', '.join(missing)}"
         raise CohortError(msg)
     return _SLOT.sub(lambda match: _literal(match.group(1), values[match.group(1)]), text)
+
+
+def _wanted(text: str) -> set[str]:
+    """Slots a recipe reads: its ``{{ slot }}`` markers and the slots its macros name."""
+    wanted = set(_SLOT.findall(text))
+    for _, arguments in _MACRO.findall(text):
+        for part in arguments.split(","):
+            key, _, value = part.partition("=")
+            if key.strip() == "only":
+                wanted.add(value.strip())
+    return wanted
 
 
 def recipe_names() -> list[str]:
@@ -136,15 +159,17 @@ def _recipe_path(name: str) -> Path:
     return path
 
 
-def render_recipe(name: str, values: Mapping[str, SlotValue]) -> str:
+def render_recipe(name: str, values: Mapping[str, SlotValue], *, dialect: str = "duckdb") -> str:
     """Read recipe ``name`` (for example ``"10_lab_events.sql"``) and fill its slots.
 
     Slot values not used by this recipe are ignored, so one parameter mapping can serve every
-    recipe of a run; slots the recipe has but the mapping lacks are an error.
+    recipe of a run; slots the recipe has but the mapping lacks are an error. Macro calls expand
+    for ``dialect`` (DuckDB unless an engine's renderer asks otherwise).
     """
     text = _recipe_path(name).read_text(encoding="utf-8")
-    wanted = set(_SLOT.findall(text))
-    return render(text, {key: values[key] for key in wanted if key in values}, recipe=name)
+    wanted = _wanted(text)
+    return render(text, {key: values[key] for key in wanted if key in values}, recipe=name,
+                  dialect=dialect)
 
 
 def run_recipe(con: object, name: str, target: str, values: Mapping[str, SlotValue]) -> None:

@@ -2,7 +2,8 @@
 -- reason it cannot be used (null when it can).
 -- grain:  one row per measurement row whose measurement_concept_id is in dka_concept_lab
 -- inputs: measurement, person, death, observation_period (CDM views); dka_concept_lab,
---         dka_concept_unit, dka_concept_ketone, dka_codelist_ketone
+--         dka_concept_unit, dka_concept_ketone, dka_codelist_ketone, dka_measurement_duplicates
+--         (sql/18)
 -- output: dka_measurement_checked (measurement_id, person_id, visit_occurrence_id,
 --         event_datetime, analyte, specimen, value, reason, detail)
 --
@@ -29,7 +30,14 @@
 --   9 implausible          canonical value outside units.csv low..high (or a urine ketone number
 --                          that is not a whole ordinal)
 --  10 duplicate            same person, concept, datetime, unit and value as a row with a lower
---                          measurement_id (that row is kept)
+--                          measurement_id (that row is kept; the rows are found by sql/18)
+--
+-- In DuckDB this recipe is a view, read once by sql/22 (the rows with a reason) and once by sql/23
+-- (the usable rows grouped by time point): each reading is a scan with hash joins to small
+-- tables, cheaper than writing tens of millions of rows. So the joins are kept few: the person's
+-- facts and a single observation period come from one table of a million rows; the few persons
+-- whose merged periods are more than one are looked up in a second, small table; units are
+-- matched by (concept_id, unit) integers.
 with
 
 lab_concepts as (
@@ -49,6 +57,21 @@ unit_rules as (
         low,
         high
     from dka_concept_unit
+),
+
+-- the unit rules of each lab concept, so a row's unit is matched on two integers
+concept_units as (
+    select
+        lab_concepts.concept_id,
+        unit_rules.unit_key,
+        unit_rules.analyte,
+        unit_rules.multiply,
+        unit_rules.add,
+        unit_rules.low,
+        unit_rules.high
+    from lab_concepts
+    inner join unit_rules
+        on unit_rules.analyte = lab_concepts.analyte
 ),
 
 ketone_concepts as (
@@ -89,17 +112,6 @@ deaths as (
         min(coalesce(death_date, cast(death_datetime as date))) as death_date
     from death
     group by person_id
-),
-
--- person facts joined once here (a million rows), not once per measurement row
-person_facts as (
-    select
-        persons.person_id,
-        persons.birth_datetime,
-        deaths.death_date
-    from persons
-    left join deaths
-        on deaths.person_id = persons.person_id
 ),
 
 periods as (
@@ -149,6 +161,51 @@ periods_merged as (
     group by person_id, island
 ),
 
+period_counts as (
+    select
+        person_id,
+        count(*) as islands,
+        min(start_date) as start_date,
+        max(end_date) as end_date
+    from periods_merged
+    group by person_id
+),
+
+-- person facts joined once here (a million rows), not once per measurement row; a person with one
+-- merged observation period (nearly everyone) carries it here
+person_facts as (
+    select
+        persons.person_id,
+        persons.birth_datetime,
+        deaths.death_date,
+        period_counts.islands,
+        period_counts.start_date,
+        period_counts.end_date
+    from persons
+    left join deaths
+        on deaths.person_id = persons.person_id
+    left join period_counts
+        on period_counts.person_id = persons.person_id
+),
+
+-- the periods of persons with more than one, looked up by date
+split_periods as (
+    select
+        periods_merged.person_id,
+        periods_merged.start_date,
+        periods_merged.end_date
+    from periods_merged
+    inner join period_counts
+        on period_counts.person_id = periods_merged.person_id
+    where period_counts.islands > 1
+),
+
+duplicates as (
+    select
+        measurement_id
+    from dka_measurement_duplicates
+),
+
 measurements as (
     select
         measurement.measurement_id,
@@ -176,88 +233,6 @@ measurements as (
         on lab_concepts.concept_id = measurement.measurement_concept_id
 ),
 
--- duplicates: first the (person, concept, time) keys that occur more than once, then the full
--- comparison, ranked by measurement_id, on those rows only. The keys come from a narrow read of
--- three columns: each row is compared with the one before it in (concept, time) order within the
--- person (a sort of narrow rows). At a million persons this took about a fifth less CPU than an
--- aggregate over the 57 million near-unique keys, and peak memory fell from 3.1 to 1.9 GiB (the
--- aggregate spilled); at 100,000 persons it is a few per cent slower (benchmarks/bench_labs.py).
--- These CTEs read the measurement view again rather than `measurements`, so that CTE is used
--- once and not materialised.
-time_order as (
-    select
-        measurement.person_id,
-        measurement.measurement_concept_id,
-        measurement.measurement_datetime,
-        lag(measurement.measurement_concept_id) over (
-            partition by measurement.person_id
-            order by measurement.measurement_concept_id, measurement.measurement_datetime
-        ) as previous_concept_id,
-        lag(measurement.measurement_datetime) over (
-            partition by measurement.person_id
-            order by measurement.measurement_concept_id, measurement.measurement_datetime
-        ) as previous_datetime
-    from measurement
-    where measurement.measurement_datetime is not null
-        and measurement.person_id is not null
-        and measurement.measurement_concept_id in (select lab_concepts.concept_id from lab_concepts)
-),
-
-collision_keys as (
-    select distinct
-        person_id,
-        measurement_concept_id,
-        measurement_datetime
-    from time_order
-    where previous_concept_id = measurement_concept_id
-        and previous_datetime = measurement_datetime
-),
-
-collisions as (
-    select
-        measurement.measurement_id,
-        measurement.person_id,
-        measurement.measurement_concept_id,
-        measurement.measurement_datetime,
-        case when measurement.unit_concept_id = 0 then null else measurement.unit_concept_id end as unit_concept_id,
-        measurement.value_as_number,
-        measurement.value_as_concept_id,
-        measurement.value_source_value
-    from measurement
-    inner join collision_keys
-        on collision_keys.person_id = measurement.person_id
-        and collision_keys.measurement_concept_id = measurement.measurement_concept_id
-        and collision_keys.measurement_datetime = measurement.measurement_datetime
-    -- implied by the join; stated so the scan skips other analytes' rows and date-only rows
-    -- before reading their other columns (a semi-join: a concept listed twice adds no row)
-    where measurement.measurement_datetime is not null
-        and measurement.measurement_concept_id in (select lab_concepts.concept_id from lab_concepts)
-),
-
-duplicate_ranks as (
-    select
-        measurement_id,
-        row_number() over (
-            partition by
-                person_id,
-                measurement_concept_id,
-                measurement_datetime,
-                unit_concept_id,
-                value_as_number,
-                value_as_concept_id,
-                case when value_as_number is null then lower(replace(trim(value_source_value), ' ', '')) end
-            order by measurement_id
-        ) as copy_number
-    from collisions
-),
-
-duplicates as (
-    select distinct
-        measurement_id
-    from duplicate_ranks
-    where copy_number > 1
-),
-
 joined as (
     select
         measurements.measurement_id,
@@ -276,24 +251,30 @@ joined as (
         person_facts.person_id as known_person_id,
         person_facts.birth_datetime,
         person_facts.death_date,
-        periods_merged.person_id as observed_person_id,
-        unit_rules.analyte as unit_rule_analyte,
-        unit_rules.multiply,
-        unit_rules.add,
-        unit_rules.low,
-        unit_rules.high,
+        case
+            when person_facts.islands = 1
+                and cast(measurements.measurement_datetime as date) >= person_facts.start_date
+                and cast(measurements.measurement_datetime as date) <= person_facts.end_date
+                then measurements.person_id
+            else split_periods.person_id
+        end as observed_person_id,
+        concept_units.analyte as unit_rule_analyte,
+        concept_units.multiply,
+        concept_units.add,
+        concept_units.low,
+        concept_units.high,
         coalesce(ketone_concepts.ordinal, ketone_texts.ordinal) as ordinal,
         case when duplicates.measurement_id is null then false else true end as is_duplicate
     from measurements
     left join person_facts
         on person_facts.person_id = measurements.person_id
-    left join periods_merged
-        on periods_merged.person_id = measurements.person_id
-        and cast(measurements.measurement_datetime as date) >= periods_merged.start_date
-        and cast(measurements.measurement_datetime as date) <= periods_merged.end_date
-    left join unit_rules
-        on unit_rules.analyte = measurements.analyte
-        and unit_rules.unit_key = coalesce(measurements.unit_concept_id, -1)
+    left join split_periods
+        on split_periods.person_id = measurements.person_id
+        and cast(measurements.measurement_datetime as date) >= split_periods.start_date
+        and cast(measurements.measurement_datetime as date) <= split_periods.end_date
+    left join concept_units
+        on concept_units.concept_id = measurements.measurement_concept_id
+        and concept_units.unit_key = coalesce(measurements.unit_concept_id, -1)
     left join ketone_concepts
         on ketone_concepts.concept_id = measurements.ketone_concept_id
     left join ketone_texts

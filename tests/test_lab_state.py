@@ -1,7 +1,8 @@
 """Lab state over time (sql/31_lab_state.sql): worked examples and a plain-Python reference.
 
 The recipe is run on ``dka_lab_events`` / ``dka_person_diabetes`` tables built directly in a DuckDB
-session (the intermediate-table contract of DEVELOPERS.md). Values are invented; the rules checked
+session (the intermediate-table contract of DEVELOPERS.md), gathered into time points by
+``sql/23_lab_points.sql`` as a run does. Values are invented; the rules checked
 are the recipe's own (bounded carry-forward, specimens, the anion gap formula).
 
 Anion gap = Na - (Cl + HCO3), with potassium (Na + K) - (Cl + HCO3), measured sodium (CLINICAL.md
@@ -19,7 +20,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from cohort._sql import Fragment, run_recipe
+from cohort._sql import Fragment, render_recipe, run_recipe
 from cohort.episodes import STATE_ANALYTES
 
 T0 = dt.datetime(2024, 3, 1, 8, 0)
@@ -56,11 +57,15 @@ def session(events, diabetes=()):
         first[person] = min(first.get(person, minutes), minutes)
     for person, minutes in first.items():
         con.execute("insert into dka_person_diabetes values (?, ?, 'type1')", [person, at(minutes)])
+    run_recipe(con, "23_lab_points.sql", "dka_lab_points", {})
     return con
 
 
-def state(con, slots=None):
-    run_recipe(con, "31_lab_state.sql", "dka_lab_state", {**SLOTS, **(slots or {})})
+def state(con, slots=None, *, dialect="duckdb"):
+    """Run sql/31; ``dialect`` picks the form of its carry-forward macro (cohort/_macros.py): the
+    portable form is DuckDB SQL too, so both forms run here on the same rows."""
+    sql = render_recipe("31_lab_state.sql", {**SLOTS, **(slots or {})}, dialect=dialect)
+    con.execute(f"create or replace temp table dka_lab_state as\n{sql}")
     rows = con.sql("select * from dka_lab_state order by person_id, state_datetime").fetchall()
     names = [column[0] for column in con.sql("select * from dka_lab_state limit 0").description]
     return [dict(zip(names, row)) for row in rows]
@@ -281,11 +286,14 @@ _event = st.tuples(
        bicarbonate_specimens=st.sampled_from([("serum",), ("serum", "venous", "total_co2")]))
 def test_window_form_equals_plain_python_reference(events, diabetes, dx_hours, rs_hours, pairing,
                                                    ph_specimens, bicarbonate_specimens):
-    """Portable window-function form == loops (the property test STYLE.md habit 9 asks for)."""
+    """Both forms of the carry-forward (DuckDB's and the portable one other engines run) == loops
+    (the property test STYLE.md habit 9 asks for)."""
     slots = {**SLOTS, "diagnosis_lookback_hours": dx_hours, "resolution_lookback_hours": rs_hours,
              "anion_gap_pairing_minutes": pairing, "ph_specimens": ph_specimens,
              "bicarbonate_specimens": bicarbonate_specimens}
-    got = state(session(events, diabetes), slots)
+    con = session(events, diabetes)
+    got = state(con, slots)
+    assert state(con, slots, dialect="postgres") == got
     want = reference_state(events, diabetes, slots)
     assert [(r["person_id"], r["state_datetime"]) for r in got] == \
         [(r["person_id"], r["state_datetime"]) for r in want]

@@ -1,8 +1,9 @@
-"""Where prepare_lab_events keeps its large result, and its timing callback (brief H9).
+"""Where prepare_lab_events keeps its large results, and its timing callback (brief H9).
 
-``dka_measurement_checked`` (every measurement row of a DKA analyte) is stored in a scratch
-DuckDB database file, compressed, behind a temporary view of the same name; the folder goes when
-the extract handle does. These are engineering checks of the toolkit's own design (no clinical
+``dka_measurement_checked`` (every measurement row of a DKA analyte) and ``dka_lab_events`` are
+temporary views, never written; ``dka_lab_points`` (the usable results by time point) is stored in
+a scratch DuckDB database file, compressed, behind a temporary view of the same name; the folder
+goes when the extract handle does. These are engineering checks of the toolkit's own design (no clinical
 reference applies); the clinical content of the same tables is checked in test_labs.py and
 test_labs_reference.py.
 """
@@ -27,18 +28,24 @@ def _extract(tmp_path: Path) -> Path:
     return cdm.write(tmp_path / "x", fmt="parquet")
 
 
-def test_checked_rows_live_in_the_scratch_database(tmp_path: Path) -> None:
+def test_checked_rows_are_views_and_time_points_live_in_the_scratch_database(tmp_path: Path) -> None:
     with open_extract(_extract(tmp_path)) as extract:
         prepare_lab_events(extract)
         con = extract.con
         stored = con.execute(
-            "select database_name from duckdb_tables() where table_name = 'dka_measurement_checked'"
+            "select table_name, database_name from duckdb_tables() where table_name in "
+            "('dka_measurement_checked', 'dka_lab_events', 'dka_lab_points') order by table_name"
         ).fetchall()
-        assert stored == [("dka_work",)]
+        assert stored == [("dka_lab_points", "dka_work")]
         views = con.execute(
-            "select count(*) from duckdb_views() where view_name = 'dka_measurement_checked' and temporary"
-        ).fetchall()[0][0]
-        assert views == 1
+            "select view_name from duckdb_views() where view_name in ('dka_measurement_checked', "
+            "'dka_lab_events', 'dka_lab_points') and temporary order by view_name"
+        ).fetchall()
+        assert views == [("dka_lab_events",), ("dka_lab_points",), ("dka_measurement_checked",)]
+        # the two usable glucose rows (250 and 251 mg/dL) at 09:00 make one time point
+        points = con.execute("select point_datetime, results, glucose from dka_lab_points").fetchall()
+        assert len(points) == 1 and points[0][1] == 2
+        assert abs(points[0][2] - 251.0 / 18.016) < 0.01
         reasons = con.execute(
             "select reason, count(*) from dka_measurement_checked group by reason order by reason").fetchall()
         assert reasons == [("duplicate", 1), ("no_time", 1), (None, 2)]
@@ -48,6 +55,7 @@ def test_checked_rows_live_in_the_scratch_database(tmp_path: Path) -> None:
         # a second run in the same session replaces the tables and reuses the scratch database
         prepare_lab_events(extract)
         assert con.execute("select count(*) from dka_measurement_checked").fetchall()[0][0] == 4
+        assert con.execute("select sum(results) from dka_lab_points").fetchall()[0][0] == 2
     del extract
     gc.collect()
     assert not folder.exists()

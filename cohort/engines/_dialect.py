@@ -670,7 +670,7 @@ def render_for(dialect: str, recipe_name: str, values: Mapping[str, Any]) -> str
     """
     from cohort._sql import render_recipe
 
-    return transpile(render_recipe(recipe_name, values), dialect, recipe=recipe_name)
+    return transpile(render_recipe(recipe_name, values, dialect=dialect), dialect, recipe=recipe_name)
 
 
 def _definition(definition: Any) -> Any:

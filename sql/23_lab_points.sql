@@ -1,0 +1,113 @@
+-- 23_lab_points: the usable lab results of each person gathered by time point.
+-- grain:  one row per (person_id, point_datetime) with at least one usable result
+-- inputs: dka_lab_events (sql/21)
+-- output: dka_lab_points (person_id, point_datetime, visit_occurrence_id, results, and one column
+--         per analyte: glucose, bhb, urine_ketones, sodium, chloride, potassium, anion_gap, anion_gap_with_k, hba1c, creatinine;
+--         pH and bicarbonate one column per specimen: ph_<specimen>, bicarbonate_<specimen>)
+--
+-- Rules (toolkit choices, common practice unless a source is named):
+-- * Several results of one analyte at one time point: the most acidotic pH and bicarbonate (min),
+--   the highest glucose, ketones, anion gap, HbA1c and creatinine (max), the mean of sodium,
+--   chloride and potassium. Duplicates are already removed (sql/18, sql/20).
+-- * pH and bicarbonate are kept per specimen (the specimens of cohort._codelists.SPECIMENS), so
+--   that each definition's lab state (sql/31) takes the minimum over the specimens it accepts.
+-- * visit_occurrence_id: the largest among the time point's results.
+-- * results: the number of usable rows at the time point (their sum is the used-row count of the
+--   reconciliation).
+-- Built once per run and read by every definition's lab state: a DKA analyte result is read from
+-- the source twice in all (here and for the quarantine), not once per definition.
+with
+
+usable as (
+    select
+        dka_lab_events.person_id,
+        dka_lab_events.event_datetime,
+        dka_lab_events.visit_occurrence_id,
+        dka_lab_events.analyte,
+        dka_lab_events.specimen,
+        dka_lab_events.value
+    from dka_lab_events
+),
+
+points as (
+    select
+        usable.person_id,
+        usable.event_datetime as point_datetime,
+        max(usable.visit_occurrence_id) as visit_occurrence_id,
+        count(*) as results,
+        max(case when usable.analyte = 'glucose' then usable.value end) as glucose,
+        max(case when usable.analyte = 'bhb' then usable.value end) as bhb,
+        max(case when usable.analyte = 'urine_ketones' then usable.value end) as urine_ketones,
+        avg(case when usable.analyte = 'sodium' then usable.value end) as sodium,
+        avg(case when usable.analyte = 'chloride' then usable.value end) as chloride,
+        avg(case when usable.analyte = 'potassium' then usable.value end) as potassium,
+        max(case when usable.analyte = 'anion_gap' then usable.value end) as anion_gap,
+        max(case when usable.analyte = 'anion_gap_with_k' then usable.value end) as anion_gap_with_k,
+        max(case when usable.analyte = 'hba1c' then usable.value end) as hba1c,
+        max(case when usable.analyte = 'creatinine' then usable.value end) as creatinine,
+        min(case when usable.analyte = 'ph' and usable.specimen = 'arterial' then usable.value end) as ph_arterial,
+        min(case when usable.analyte = 'ph' and usable.specimen = 'venous' then usable.value end) as ph_venous,
+        min(case when usable.analyte = 'ph' and usable.specimen = 'capillary' then usable.value end) as ph_capillary,
+        min(case when usable.analyte = 'ph' and usable.specimen = 'unspecified' then usable.value end) as ph_unspecified,
+        min(case when usable.analyte = 'bicarbonate' and usable.specimen = 'serum' then usable.value end) as bicarbonate_serum,
+        min(case when usable.analyte = 'bicarbonate' and usable.specimen = 'blood' then usable.value end) as bicarbonate_blood,
+        min(case when usable.analyte = 'bicarbonate' and usable.specimen = 'arterial' then usable.value end) as bicarbonate_arterial,
+        min(case when usable.analyte = 'bicarbonate' and usable.specimen = 'venous' then usable.value end) as bicarbonate_venous,
+        min(case when usable.analyte = 'bicarbonate' and usable.specimen = 'total_co2' then usable.value end) as bicarbonate_total_co2
+    from usable
+    group by usable.person_id, usable.event_datetime
+),
+
+final as (
+    select
+        cast(points.person_id as bigint) as person_id,
+        cast(points.point_datetime as timestamp) as point_datetime,
+        cast(points.visit_occurrence_id as bigint) as visit_occurrence_id,
+        cast(points.results as bigint) as results,
+        cast(points.glucose as double) as glucose,
+        cast(points.bhb as double) as bhb,
+        cast(points.urine_ketones as double) as urine_ketones,
+        cast(points.sodium as double) as sodium,
+        cast(points.chloride as double) as chloride,
+        cast(points.potassium as double) as potassium,
+        cast(points.anion_gap as double) as anion_gap,
+        cast(points.anion_gap_with_k as double) as anion_gap_with_k,
+        cast(points.hba1c as double) as hba1c,
+        cast(points.creatinine as double) as creatinine,
+        cast(points.ph_arterial as double) as ph_arterial,
+        cast(points.ph_venous as double) as ph_venous,
+        cast(points.ph_capillary as double) as ph_capillary,
+        cast(points.ph_unspecified as double) as ph_unspecified,
+        cast(points.bicarbonate_serum as double) as bicarbonate_serum,
+        cast(points.bicarbonate_blood as double) as bicarbonate_blood,
+        cast(points.bicarbonate_arterial as double) as bicarbonate_arterial,
+        cast(points.bicarbonate_venous as double) as bicarbonate_venous,
+        cast(points.bicarbonate_total_co2 as double) as bicarbonate_total_co2
+    from points
+)
+
+select
+    final.person_id,
+    final.point_datetime,
+    final.visit_occurrence_id,
+    final.results,
+    final.glucose,
+    final.bhb,
+    final.urine_ketones,
+    final.sodium,
+    final.chloride,
+    final.potassium,
+    final.anion_gap,
+    final.anion_gap_with_k,
+    final.hba1c,
+    final.creatinine,
+    final.ph_arterial,
+    final.ph_venous,
+    final.ph_capillary,
+    final.ph_unspecified,
+    final.bicarbonate_serum,
+    final.bicarbonate_blood,
+    final.bicarbonate_arterial,
+    final.bicarbonate_venous,
+    final.bicarbonate_total_co2
+from final
