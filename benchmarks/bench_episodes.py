@@ -32,6 +32,11 @@ from collections.abc import Sequence
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
+HERE = Path(__file__).resolve().parent
+if str(HERE) not in sys.path:
+    sys.path.insert(0, str(HERE))
+
+from _measure import scan_run  # noqa: E402  (the one bare-scan query every benchmark prints)
 DEFINITIONS = ("consensus-2024", "ada-2009", "jbds-2023", "ispad-2022")
 
 _CHILD = r"""
@@ -44,23 +49,6 @@ seconds, cpu = time.perf_counter() - started, time.process_time() - cpu
 print(json.dumps({{"seconds": seconds, "cpu": cpu, "episodes": result.episodes.height,
                   "steps": result.manifest["seconds"]}}))
 """
-
-_SCAN = r"""
-import json, sys, time
-sys.path.insert(0, {root!r})
-from cohort.source import open_extract
-from cohort._cdm import used_columns
-with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}) as extract:
-    extract.con.execute("set enable_progress_bar = false")
-    columns = [column.name for column in used_columns("measurement")]
-    aggregates = ", ".join(f"sum(hash({{name}}))" for name in columns)
-    started = time.perf_counter()
-    extract.con.execute(f"select {{aggregates}} from measurement").fetchall()
-    seconds = time.perf_counter() - started
-    rows = extract.row_count("measurement")
-print(json.dumps({{"seconds": seconds, "rows": rows, "columns": columns}}))
-"""
-
 
 def _run(code: str) -> tuple[dict, float]:
     """Run ``code`` in a fresh interpreter; return its JSON output and peak RSS in GiB."""
@@ -92,7 +80,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     extract = str(args.extract.resolve())
     settings = {"root": str(ROOT), "extract": extract, "threads": args.threads, "memory": args.memory_limit}
 
-    scan, scan_rss = _run(_SCAN.format(**settings))
+    measured = scan_run(args.extract.resolve(), threads=args.threads, memory_limit=args.memory_limit)
+    if not measured.ok:
+        raise SystemExit(f"bare scan failed: {measured.error}")
+    scan, scan_rss = measured.result, measured.peak_rss_gib
     print(f"extract {extract}: {scan['rows']:,} measurement rows; threads={args.threads}, "
           f"memory_limit={args.memory_limit}")
     print(f"bare scan of measurement ({', '.join(scan['columns'])}): {scan['seconds']:.2f} s, "

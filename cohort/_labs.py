@@ -18,7 +18,9 @@ The reconciliation identity is checked on every run, from counts taken independe
                                       + rows of other analytes (concept not in dka_concept_lab)
 
 ``dka_measurement_checked`` (tens of millions of rows at a million persons) and ``dka_lab_events``
-(its usable rows) are temporary views, read by ``sql/22`` and ``sql/23``; ``dka_lab_points`` is
+(its usable rows) are temporary views, read by ``sql/22`` (every row, by time point) and
+``sql/23`` (the quarantine: only the rows at time points holding an excluded row, see
+:data:`_QUARANTINE_SCOPE`); ``dka_lab_points`` is
 kept compressed in a scratch database file behind a temporary view (:func:`_work_catalog`,
 :func:`_store`). On other engines every recipe is a table. ``on_step`` reports each recipe's time
 (``benchmarks/bench_labs.py``). ``rows_other`` is counted per concept from the one column
@@ -43,7 +45,7 @@ import polars as pl
 
 from cohort._codelists import CodeLists, read_codelists, register_codelists
 from cohort._errors import CohortError, InputError
-from cohort._sql import Identifier, render_recipe, run_recipe
+from cohort._sql import Fragment, Identifier, render_recipe, run_recipe
 from cohort.source import Extract
 
 __all__ = [
@@ -72,8 +74,8 @@ LAB_RECIPES: tuple[tuple[str, str], ...] = (
     ("19_codelist_unresolved.sql", "dka_codelist_unresolved"),
     ("20_measurement_checked.sql", "dka_measurement_checked"),
     ("21_lab_events.sql", "dka_lab_events"),
-    ("22_quarantine.sql", "dka_quarantine"),
-    ("23_lab_points.sql", "dka_lab_points"),
+    ("22_lab_points.sql", "dka_lab_points"),
+    ("23_quarantine.sql", "dka_quarantine"),
 )
 
 #: Session objects made as temporary views rather than tables (same columns, same name): every
@@ -86,6 +88,17 @@ _VIEWS = frozenset({"dka_measurement_checked", "dka_lab_events"})
 #: time points (about 11 million rows at a million persons, mostly null columns, which compress to
 #: little in a database file and take some 2 GB as an uncompressed temporary table).
 _STORED = frozenset({"dka_lab_points"})
+
+#: The rows the quarantine reading of ``sql/20`` checks in DuckDB: rows with no person or no time
+#: (never usable, in no time point) and rows at the time points ``sql/22`` found holding an
+#: excluded row. Every row with a reason is one of them, so ``sql/23`` gives the same rows as from
+#: every row; at a million persons these are some 4 of 57 million rows. A condition written here
+#: (a :class:`Fragment`), never from user text.
+_QUARANTINE_SCOPE = Fragment(
+    "(measurement.person_id is null or measurement.measurement_datetime is null or exists ("
+    "select 1 from dka_lab_points where dka_lab_points.excluded > 0 "
+    "and dka_lab_points.person_id = measurement.person_id "
+    "and dka_lab_points.point_datetime = measurement.measurement_datetime))")
 
 #: Name of the attached scratch database holding the :data:`_STORED` tables.
 _WORK = "dka_work"
@@ -218,11 +231,12 @@ def default_as_of() -> dt.date:
 
 
 def lab_slots(as_of: dt.date | None = None) -> dict[str, object]:
-    """Slot values of the lab recipes (``sql/10`` .. ``sql/22``) for a run as of ``as_of``.
+    """Slot values of the lab recipes (``sql/10`` .. ``sql/23``) for a run as of ``as_of``.
 
     ``results_before`` is the first moment after the as-of day: a result dated then or later is
     quarantined as ``implausible_time`` (``sql/20``). A rerun with the same as-of date (it is in
-    the manifest) gives the same quarantine.
+    the manifest) gives the same quarantine. ``row_scope`` is ``true`` (every row is checked);
+    :func:`prepare_lab_events` narrows it for the quarantine reading in DuckDB.
 
     Examples
     --------
@@ -233,7 +247,8 @@ def lab_slots(as_of: dt.date | None = None) -> dict[str, object]:
     if not isinstance(day, dt.date) or isinstance(day, dt.datetime):
         msg = f"as_of must be a date (datetime.date), got {day!r}"
         raise InputError(msg)
-    return {"results_before": dt.datetime.combine(day + dt.timedelta(days=1), dt.time())}
+    return {"results_before": dt.datetime.combine(day + dt.timedelta(days=1), dt.time()),
+            "row_scope": Fragment("true")}
 
 
 def data_quality_frame(counts: Iterable[tuple[object, object, object]]) -> pl.DataFrame:
@@ -318,7 +333,16 @@ def prepare_lab_events(
     slots = lab_slots(as_of)
     for recipe, target in LAB_RECIPES:
         step_started = time.perf_counter()
-        if target in _VIEWS:
+        if target == "dka_quarantine":
+            # read the checked rows in the scope of the excluded rows' time points, then restore
+            # the full view (dka_lab_events and later readers see every row)
+            scoped = {**slots, "row_scope": _QUARANTINE_SCOPE}
+            con.execute("create or replace temp view dka_measurement_checked as\n"
+                        + render_recipe("20_measurement_checked.sql", scoped))
+            run_recipe(con, recipe, target, slots)
+            con.execute("create or replace temp view dka_measurement_checked as\n"
+                        + render_recipe("20_measurement_checked.sql", slots))
+        elif target in _VIEWS:
             # read by the next recipes only: a view saves writing every checked row
             Identifier(target)
             con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, slots)}")
@@ -331,7 +355,7 @@ def prepare_lab_events(
 
     step_started = time.perf_counter()
     rows_read = extract.row_count("measurement")
-    # the usable rows as sql/23 counted them at their time points (no third reading of the rows)
+    # the usable rows as sql/22 counted them at their time points (no third reading of the rows)
     rows_used = _scalar(con, "select coalesce(sum(results), 0) from dka_lab_points")
     rows_quarantined = _scalar(
         con, "select count(*) from dka_quarantine where source_table = 'measurement'")

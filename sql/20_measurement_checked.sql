@@ -32,9 +32,13 @@
 --  10 duplicate            same person, concept, datetime, unit and value as a row with a lower
 --                          measurement_id (that row is kept; the rows are found by sql/18)
 --
--- In DuckDB this recipe is a view, read once by sql/22 (the rows with a reason) and once by sql/23
--- (the usable rows grouped by time point): each reading is a scan with hash joins to small
--- tables, cheaper than writing tens of millions of rows. So the joins are kept few: the person's
+-- slot:   row_scope, a toolkit-made condition on `measurement` limiting the rows checked (`true`
+--         for every row; cohort/_labs.py narrows it for the quarantine reading, see below)
+--
+-- In DuckDB this recipe is a view, read once by sql/22 (every row, gathered by time point) and
+-- once by sql/23 (the rows with a reason, with row_scope set to the rows at time points holding
+-- an excluded row and the rows with no person or time): each reading is a scan with hash joins
+-- to small tables, cheaper than writing tens of millions of rows. So the joins are kept few: the person's
 -- facts and a single observation period come from one table of a million rows; the few persons
 -- whose merged periods are more than one are looked up in a second, small table; units are
 -- matched by (concept_id, unit) integers.
@@ -231,6 +235,7 @@ measurements as (
     from measurement
     inner join lab_concepts
         on lab_concepts.concept_id = measurement.measurement_concept_id
+    where {{ row_scope }}
 ),
 
 joined as (

@@ -2,7 +2,7 @@
 
 The recipe is run on ``dka_lab_events`` / ``dka_person_diabetes`` tables built directly in a DuckDB
 session (the intermediate-table contract of DEVELOPERS.md), gathered into time points by
-``sql/23_lab_points.sql`` as a run does. Values are invented; the rules checked
+``sql/22_lab_points.sql`` as a run does. Values are invented; the rules checked
 are the recipe's own (bounded carry-forward, specimens, the anion gap formula).
 
 Anion gap = Na - (Cl + HCO3), with potassium (Na + K) - (Cl + HCO3), measured sodium (CLINICAL.md
@@ -57,7 +57,11 @@ def session(events, diabetes=()):
         first[person] = min(first.get(person, minutes), minutes)
     for person, minutes in first.items():
         con.execute("insert into dka_person_diabetes values (?, ?, 'type1')", [person, at(minutes)])
-    run_recipe(con, "23_lab_points.sql", "dka_lab_points", {})
+    # the checked-rows contract sql/22 reads (sql/20): these rows are all usable
+    con.execute("create temp view dka_measurement_checked as select person_id, measurement_id, "
+                "visit_occurrence_id, event_datetime, analyte, specimen, value, "
+                "cast(null as varchar) as reason, cast(null as varchar) as detail from dka_lab_events")
+    run_recipe(con, "22_lab_points.sql", "dka_lab_points", {})
     return con
 
 

@@ -67,3 +67,30 @@ def test_on_step_reports_every_recipe_then_the_accounting(tmp_path: Path) -> Non
         prepare_lab_events(extract, on_step=lambda name, seconds: steps.append((name, seconds)))
     assert [name for name, _ in steps] == [recipe for recipe, _ in LAB_RECIPES] + ["accounting"]
     assert all(seconds >= 0 for _, seconds in steps)
+
+
+def test_the_scoped_quarantine_reading_finds_every_row_a_full_reading_finds(tmp_path: Path) -> None:
+    """sql/23 reads sql/20 only at time points holding an excluded row (cohort._labs): exact by
+    construction; checked here on rows of several reasons, against the full reading."""
+    cdm = MiniCdm()
+    cdm.person(1, birth="1980-05-01")
+    cdm.person(2, birth="1990-01-01")
+    cdm.lab(1, "2345-7", 250.0, unit="mg/dL", at="2024-03-01 09:00")
+    cdm.lab(1, "2345-7", 250.0, unit="mg/dL", at="2024-03-01 09:00")  # duplicate
+    cdm.lab(1, "2345-7", 9999.0, unit="mg/dL", at="2024-03-01 10:00")  # implausible
+    cdm.lab(1, "2345-7", 120.0, unit="mg/dL", at="2024-03-01 10:00")  # usable, same point
+    cdm.lab(1, "1963-8", 12.0, unit="mmol/L", at=None, date="2024-03-01")  # no time
+    cdm.lab(2, "2345-7", 100.0, unit="mg/dL", at="1985-01-01 10:00")  # before birth
+    cdm.lab(3, "2345-7", 100.0, unit="mg/dL", at="2024-01-01 10:00")  # unknown person
+    cdm.lab(2, "2345-7", 100.0, unit="mg/dL", at="2024-01-01 11:00")  # usable
+    with open_extract(cdm.write(tmp_path / "y", fmt="parquet")) as extract:
+        summary = prepare_lab_events(extract)
+        con = extract.con
+        scoped = con.execute("select source_row_id, reason from dka_quarantine "
+                             "where source_table = 'measurement' order by 1").fetchall()
+        full = con.execute("select measurement_id, reason from dka_measurement_checked "
+                           "where reason is not null order by 1").fetchall()
+        assert scoped == full
+        assert sorted(reason for _, reason in scoped) == [
+            "before_birth", "duplicate", "implausible", "no_time", "person_unknown"]
+        assert summary.reconciles and summary.rows_used == 3

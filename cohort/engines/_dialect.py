@@ -10,7 +10,9 @@ Constructs refused (they give wrong answers or fail on the target; the recipe mu
 
 - ``ASOF JOIN`` (every target but DuckDB): sqlglot passes it through untouched;
 - ``IGNORE NULLS`` / ``RESPECT NULLS`` (every target but DuckDB): dropped silently for PostgreSQL;
-  write bounded carry-forward as count-then-``first_value`` (``sql/31_lab_state.sql``);
+  write bounded carry-forward with the ``carry_forward`` macro (``cohort/_macros.py``), which
+  renders DuckDB's ``last_value(... ignore nulls)`` only for DuckDB and the portable
+  count-then-``first_value`` form for every engine this module writes for;
 - ``LATERAL`` subqueries with ``LIMIT`` (Spark): wrong rows with adaptive query execution on;
   use ``row_number()`` over a join;
 - ``date_diff`` / ``datediff`` (every target but DuckDB): DuckDB counts unit boundaries crossed,
@@ -110,8 +112,9 @@ def _check_ignore_nulls(tree: exp.Expression, recipe: str, dialect: str) -> None
         word = "IGNORE NULLS" if isinstance(node, exp.IgnoreNulls) else "RESPECT NULLS"
         raise _fail(recipe, dialect, f"{word} in {_snippet(node)}",
                     "sqlglot drops it for PostgreSQL (wrong answers) and the engines differ",
-                    "Carry values forward with a running count of non-null values and "
-                    "first_value() over (partition by person, count), as sql/31_lab_state.sql does")
+                    "Carry values forward with the carry_forward macro (cohort/_macros.py), as "
+                    "sql/31_lab_state.sql does: it renders the portable count-then-first-value "
+                    "form for every engine but DuckDB")
 
 
 def _check_lateral_limit(tree: exp.Expression, recipe: str, dialect: str) -> None:

@@ -279,7 +279,8 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
             run_lab_steps(session, as_of=as_of)
             rows_read = _scalar(session, "select count(*) from measurement", "measurement rows")
             lab_persons, rows_used = _pair(
-                session, "select count(distinct person_id), coalesce(sum(results), 0) from dka_lab_points", "lab events")
+                session, "select count(distinct case when results > 0 then person_id end), "
+                "coalesce(sum(results), 0) from dka_lab_points", "lab events")
             rows_quarantined = _scalar(
                 session, "select count(*) from dka_quarantine where source_table = 'measurement'", "quarantine")
             rows_other = _scalar(

@@ -1,7 +1,8 @@
--- 23_lab_points: the usable lab results of each person gathered by time point.
--- grain:  one row per (person_id, point_datetime) with at least one usable result
--- inputs: dka_lab_events (sql/21)
--- output: dka_lab_points (person_id, point_datetime, visit_occurrence_id, results, and one column
+-- 22_lab_points: the lab results of each person gathered by time point.
+-- grain:  one row per (person_id, point_datetime) of the checked rows with a person and a time
+-- inputs: dka_measurement_checked (sql/20)
+-- output: dka_lab_points (person_id, point_datetime, visit_occurrence_id, results, excluded, and
+--         one column
 --         per analyte: glucose, bhb, urine_ketones, sodium, chloride, potassium, anion_gap, anion_gap_with_k, hba1c, creatinine;
 --         pH and bicarbonate one column per specimen: ph_<specimen>, bicarbonate_<specimen>)
 --
@@ -11,22 +12,42 @@
 --   chloride and potassium. Duplicates are already removed (sql/18, sql/20).
 -- * pH and bicarbonate are kept per specimen (the specimens of cohort._codelists.SPECIMENS), so
 --   that each definition's lab state (sql/31) takes the minimum over the specimens it accepts.
--- * visit_occurrence_id: the largest among the time point's results.
+-- * Only usable rows (reason null) give values; a time point whose rows are all excluded is kept,
+--   with null values, so that excluded counts them.
+-- * visit_occurrence_id: the largest among the time point's usable results.
 -- * results: the number of usable rows at the time point (their sum is the used-row count of the
---   reconciliation).
+--   reconciliation); excluded: the number of rows with a reason. sql/23 reads only the rows at
+--   time points with excluded > 0 (and the rows with no person or no time, which are never usable
+--   and have no time point): every row with a reason is among them.
 -- Built once per run and read by every definition's lab state: a DKA analyte result is read from
 -- the source twice in all (here and for the quarantine), not once per definition.
 with
 
+checked as (
+    select
+        dka_measurement_checked.person_id,
+        dka_measurement_checked.event_datetime,
+        dka_measurement_checked.visit_occurrence_id,
+        dka_measurement_checked.analyte,
+        dka_measurement_checked.specimen,
+        dka_measurement_checked.value,
+        dka_measurement_checked.reason
+    from dka_measurement_checked
+    where dka_measurement_checked.person_id is not null
+        and dka_measurement_checked.event_datetime is not null
+),
+
+-- the values of usable rows only (null for a row with a reason)
 usable as (
     select
-        dka_lab_events.person_id,
-        dka_lab_events.event_datetime,
-        dka_lab_events.visit_occurrence_id,
-        dka_lab_events.analyte,
-        dka_lab_events.specimen,
-        dka_lab_events.value
-    from dka_lab_events
+        checked.person_id,
+        checked.event_datetime,
+        case when checked.reason is null then checked.visit_occurrence_id end as visit_occurrence_id,
+        checked.analyte,
+        checked.specimen,
+        case when checked.reason is null then checked.value end as value,
+        checked.reason
+    from checked
 ),
 
 points as (
@@ -34,7 +55,8 @@ points as (
         usable.person_id,
         usable.event_datetime as point_datetime,
         max(usable.visit_occurrence_id) as visit_occurrence_id,
-        count(*) as results,
+        count(case when usable.reason is null then 1 end) as results,
+        count(usable.reason) as excluded,
         max(case when usable.analyte = 'glucose' then usable.value end) as glucose,
         max(case when usable.analyte = 'bhb' then usable.value end) as bhb,
         max(case when usable.analyte = 'urine_ketones' then usable.value end) as urine_ketones,
@@ -64,6 +86,7 @@ final as (
         cast(points.point_datetime as timestamp) as point_datetime,
         cast(points.visit_occurrence_id as bigint) as visit_occurrence_id,
         cast(points.results as bigint) as results,
+        cast(points.excluded as bigint) as excluded,
         cast(points.glucose as double) as glucose,
         cast(points.bhb as double) as bhb,
         cast(points.urine_ketones as double) as urine_ketones,
@@ -91,6 +114,7 @@ select
     final.point_datetime,
     final.visit_occurrence_id,
     final.results,
+    final.excluded,
     final.glucose,
     final.bhb,
     final.urine_ketones,

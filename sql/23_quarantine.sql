@@ -1,10 +1,12 @@
--- 22_quarantine: every source row the pipeline cannot use, with one reason.
+-- 23_quarantine: every source row the pipeline cannot use, with one reason.
 -- grain:  one row per excluded source row (source_table, source_row_id)
 -- inputs: dka_measurement_checked; drug_exposure, person (CDM views); dka_concept_drug,
 --         dka_concept_route
 -- output: dka_quarantine (source_table, source_row_id, person_id, reason, detail)
 --
--- measurement: the rows sql/20 gave a reason.
+-- measurement: the rows sql/20 gave a reason. (In DuckDB, sql/20 is read here in the scope of the
+-- time points sql/22 found holding an excluded row, and of rows with no person or no time: the
+-- same rows, from a fraction of the work; cohort/_labs.py.)
 -- drug_exposure: intravenous regular-insulin rows (the infusions the features read), first
 -- reason that applies: person_unknown, no_time (drug_exposure_start_datetime null: an infusion
 -- cannot be placed within hours), end_before_start (drug_exposure_end_datetime earlier than the
