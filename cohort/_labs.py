@@ -1,8 +1,8 @@
 """Harmonised lab events and the quarantine: run recipes 10 .. 23 and account for every row.
 
 :func:`prepare_lab_events` loads the code lists, resolves them through the extract's vocabulary
-(``sql/10`` .. ``sql/19``), finds repeated rows (``sql/18``), checks every measurement row of a DKA
-analyte (``sql/20``), and leaves ``dka_lab_events`` (usable results in canonical units),
+(``sql/10`` .. ``sql/19``), checks every measurement row of a DKA analyte (``sql/20``), gathers
+them by time point (``sql/21``), finds repeated rows (``sql/22``), and leaves ``dka_lab_events`` (usable results in canonical units),
 ``dka_quarantine`` (every excluded row with one reason) and ``dka_lab_points`` (the usable results
 gathered by person and time point, which every definition's lab state reads) in the session,
 together with the ``dka_concept_*`` tables later recipes use.
@@ -13,14 +13,15 @@ every (table, reason) of :data:`DATA_QUALITY_REASONS`, zeros included.
 
 The reconciliation identity is checked on every run, from counts taken independently::
 
-    rows read (measurement row count) = rows used (dka_lab_points, sum of results)
+    rows read (measurement row count) = rows used (dka_lab_points, sum of results, less the
+                                                   copies quarantined as duplicates)
                                       + rows quarantined (dka_quarantine, measurement rows)
                                       + rows of other analytes (concept not in dka_concept_lab)
 
 ``dka_measurement_checked`` (tens of millions of rows at a million persons) and ``dka_lab_events``
-(its usable rows) are temporary views, read by ``sql/22`` (every row, by time point) and
-``sql/23`` (the quarantine: only the rows at time points holding an excluded row, see
-:data:`_QUARANTINE_SCOPE`); ``dka_lab_points`` is
+(its usable rows) are temporary views, read by ``sql/21`` (every row, by time point) and
+``sql/24`` (the quarantine: only the rows at time points holding an excluded row or a repeated
+concept, see :data:`_QUARANTINE_SCOPE`); ``dka_lab_points`` is
 kept compressed in a scratch database file behind a temporary view (:func:`_work_catalog`,
 :func:`_store`). On other engines every recipe is a table. ``on_step`` reports each recipe's time
 (``benchmarks/bench_labs.py``). ``rows_other`` is counted per concept from the one column
@@ -70,12 +71,12 @@ LAB_RECIPES: tuple[tuple[str, str], ...] = (
     ("14_concept_route.sql", "dka_concept_route"),
     ("15_concept_visit.sql", "dka_concept_visit"),
     ("16_concept_ketone.sql", "dka_concept_ketone"),
-    ("18_measurement_duplicates.sql", "dka_measurement_duplicates"),
     ("19_codelist_unresolved.sql", "dka_codelist_unresolved"),
     ("20_measurement_checked.sql", "dka_measurement_checked"),
-    ("21_lab_events.sql", "dka_lab_events"),
-    ("22_lab_points.sql", "dka_lab_points"),
-    ("23_quarantine.sql", "dka_quarantine"),
+    ("21_lab_points.sql", "dka_lab_points"),
+    ("22_measurement_duplicates.sql", "dka_measurement_duplicates"),
+    ("23_lab_events.sql", "dka_lab_events"),
+    ("24_quarantine.sql", "dka_quarantine"),
 )
 
 #: Session objects made as temporary views rather than tables (same columns, same name): every
@@ -90,13 +91,14 @@ _VIEWS = frozenset({"dka_measurement_checked", "dka_lab_events"})
 _STORED = frozenset({"dka_lab_points"})
 
 #: The rows the quarantine reading of ``sql/20`` checks in DuckDB: rows with no person or no time
-#: (never usable, in no time point) and rows at the time points ``sql/22`` found holding an
-#: excluded row. Every row with a reason is one of them, so ``sql/23`` gives the same rows as from
-#: every row; at a million persons these are some 4 of 57 million rows. A condition written here
-#: (a :class:`Fragment`), never from user text.
+#: (never usable, in no time point) and rows at the time points ``sql/21`` found holding an
+#: excluded row or a repeated concept. Every row with a reason, and every repeated copy, is one of
+#: them, so ``sql/24`` gives the same rows as from every row; at a million persons these are some
+#: 5 of 57 million rows. A condition written here (a :class:`Fragment`), never from user text.
 _QUARANTINE_SCOPE = Fragment(
     "(measurement.person_id is null or measurement.measurement_datetime is null or exists ("
-    "select 1 from dka_lab_points where dka_lab_points.excluded > 0 "
+    "select 1 from dka_lab_points where (dka_lab_points.excluded > 0 "
+    "or dka_lab_points.concept_bits <> dka_lab_points.concept_bit_union) "
     "and dka_lab_points.person_id = measurement.person_id "
     "and dka_lab_points.point_datetime = measurement.measurement_datetime))")
 
@@ -142,7 +144,7 @@ QUARANTINE_REASONS: tuple[str, ...] = (
 )
 
 
-#: Intravenous regular-insulin drug_exposure reasons in priority order (sql/22).
+#: Intravenous regular-insulin drug_exposure reasons in priority order (sql/24).
 INFUSION_REASONS: tuple[str, ...] = ("person_unknown", "no_time", "end_before_start")
 
 #: Every (table, reason) data_quality.csv lists, zeros included, in this order.
@@ -231,7 +233,7 @@ def default_as_of() -> dt.date:
 
 
 def lab_slots(as_of: dt.date | None = None) -> dict[str, object]:
-    """Slot values of the lab recipes (``sql/10`` .. ``sql/23``) for a run as of ``as_of``.
+    """Slot values of the lab recipes (``sql/10`` .. ``sql/24``) for a run as of ``as_of``.
 
     ``results_before`` is the first moment after the as-of day: a result dated then or later is
     quarantined as ``implausible_time`` (``sql/20``). A rerun with the same as-of date (it is in
@@ -355,8 +357,10 @@ def prepare_lab_events(
 
     step_started = time.perf_counter()
     rows_read = extract.row_count("measurement")
-    # the usable rows as sql/22 counted them at their time points (no third reading of the rows)
-    rows_used = _scalar(con, "select coalesce(sum(results), 0) from dka_lab_points")
+    # the usable rows as sql/21 counted them at their time points (no third reading of the rows),
+    # less the repeated copies sql/24 quarantined as duplicates
+    rows_used = _scalar(con, "select coalesce(sum(results), 0) from dka_lab_points") - _scalar(
+        con, "select count(*) from dka_quarantine where source_table = 'measurement' and reason = 'duplicate'")
     rows_quarantined = _scalar(
         con, "select count(*) from dka_quarantine where source_table = 'measurement'")
     # counted from measurement itself, one group per concept (a single narrow column), independently

@@ -309,7 +309,7 @@ def _count(con: Any, sql: str) -> int:
 def build_lab_state(con: Any, definitions: Sequence[Definition], *, screen: bool = True) -> int:
     """Build ``dka_lab_state`` for definitions sharing one set of look-backs and specimens.
 
-    Needs ``dka_lab_points`` and ``dka_person_diabetes`` in the session (``sql/22``, ``sql/30``).
+    Needs ``dka_lab_points`` and ``dka_person_diabetes`` in the session (``sql/21``, ``sql/30``).
 
     Parameters
     ----------
@@ -722,9 +722,9 @@ def find_episodes(
             with steps.step("person_diabetes", "diabetes records"):
                 run_recipe(con, "30_person_diabetes.sql", "dka_person_diabetes", {})
             persons_total = extract.row_count("person")
-            lab_persons, lab_rows = con.execute(
-                "select count(distinct case when results > 0 then person_id end), coalesce(sum(results), 0) "
-                "from dka_lab_points").fetchall()[0]
+            lab_persons = con.execute(
+                "select count(distinct case when results > 0 then person_id end) from dka_lab_points").fetchall()[0][0]
+            lab_rows = summary.rows_used
 
             frames: list[pl.DataFrame] = []
             attrition_rows: list[dict[str, Any]] = []

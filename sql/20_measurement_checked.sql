@@ -2,10 +2,9 @@
 -- reason it cannot be used (null when it can).
 -- grain:  one row per measurement row whose measurement_concept_id is in dka_concept_lab
 -- inputs: measurement, person, death, observation_period (CDM views); dka_concept_lab,
---         dka_concept_unit, dka_concept_ketone, dka_codelist_ketone, dka_measurement_duplicates
---         (sql/18)
--- output: dka_measurement_checked (measurement_id, person_id, visit_occurrence_id,
---         event_datetime, analyte, specimen, value, reason, detail)
+--         dka_concept_unit, dka_concept_ketone, dka_codelist_ketone
+-- output: dka_measurement_checked (measurement_id, person_id, measurement_concept_id,
+--         visit_occurrence_id, event_datetime, analyte, specimen, value, reason, detail)
 --
 -- Value: value_as_number * multiply + add from the (analyte, unit_concept_id) rule of units.csv;
 -- unit_concept_id 0 or null is "no unit", accepted only where units.csv has a `none` line for the
@@ -30,14 +29,16 @@
 --   9 implausible          canonical value outside units.csv low..high (or a urine ketone number
 --                          that is not a whole ordinal)
 --  10 duplicate            same person, concept, datetime, unit and value as a row with a lower
---                          measurement_id (that row is kept; the rows are found by sql/18)
+--                          measurement_id (that row is kept): the last reason, given to rows
+--                          usable here by sql/24 from the copies sql/22 finds; sql/23 leaves them
+--                          out of the lab events
 --
 -- slot:   row_scope, a toolkit-made condition on `measurement` limiting the rows checked (`true`
 --         for every row; cohort/_labs.py narrows it for the quarantine reading, see below)
 --
--- In DuckDB this recipe is a view, read once by sql/22 (every row, gathered by time point) and
--- once by sql/23 (the rows with a reason, with row_scope set to the rows at time points holding
--- an excluded row and the rows with no person or time): each reading is a scan with hash joins
+-- In DuckDB this recipe is a view, read once by sql/21 (every row, gathered by time point) and
+-- once by sql/24 (the rows with a reason, with row_scope set to the rows at time points holding
+-- an excluded row or a repeated concept, and the rows with no person or time): each reading is a scan with hash joins
 -- to small tables, cheaper than writing tens of millions of rows. So the joins are kept few: the person's
 -- facts and a single observation period come from one table of a million rows; the few persons
 -- whose merged periods are more than one are looked up in a second, small table; units are
@@ -204,12 +205,6 @@ split_periods as (
     where period_counts.islands > 1
 ),
 
-duplicates as (
-    select
-        measurement_id
-    from dka_measurement_duplicates
-),
-
 measurements as (
     select
         measurement.measurement_id,
@@ -268,8 +263,7 @@ joined as (
         concept_units.add,
         concept_units.low,
         concept_units.high,
-        coalesce(ketone_concepts.ordinal, ketone_texts.ordinal) as ordinal,
-        case when duplicates.measurement_id is null then false else true end as is_duplicate
+        coalesce(ketone_concepts.ordinal, ketone_texts.ordinal) as ordinal
     from measurements
     left join person_facts
         on person_facts.person_id = measurements.person_id
@@ -284,14 +278,13 @@ joined as (
         on ketone_concepts.concept_id = measurements.ketone_concept_id
     left join ketone_texts
         on ketone_texts.text_key = measurements.ketone_text_key
-    left join duplicates
-        on duplicates.measurement_id = measurements.measurement_id
 ),
 
 valued as (
     select
         measurement_id,
         person_id,
+        measurement_concept_id,
         visit_occurrence_id,
         measurement_date,
         measurement_datetime,
@@ -312,8 +305,7 @@ valued as (
             when ordinal is not null then cast(ordinal as double)
             when value_as_number is not null and unit_rule_analyte is not null
                 then value_as_number * multiply + add
-        end as value,
-        is_duplicate
+        end as value
     from joined
 ),
 
@@ -321,6 +313,7 @@ reasoned as (
     select
         measurement_id,
         person_id,
+        measurement_concept_id,
         visit_occurrence_id,
         measurement_date,
         measurement_datetime,
@@ -346,7 +339,6 @@ reasoned as (
             when ordinal is null and unit_rule_analyte is null then 'unit_unknown'
             when value < low or value > high then 'implausible'
             when analyte = 'urine_ketones' and value <> floor(value) then 'implausible'
-            when is_duplicate then 'duplicate'
         end as reason
     from valued
 ),
@@ -355,6 +347,7 @@ final as (
     select
         measurement_id,
         person_id,
+        measurement_concept_id,
         visit_occurrence_id,
         measurement_datetime as event_datetime,
         analyte,
@@ -385,7 +378,6 @@ final as (
                     else 'value ' || cast(value as varchar) || ' (canonical unit) outside '
                         || cast(low as varchar) || ' .. ' || cast(high as varchar)
                 end
-            when 'duplicate' then 'same person, concept, time, unit and value as a row with a lower measurement_id'
         end end as detail
     from reasoned
 )
@@ -393,6 +385,7 @@ final as (
 select
     measurement_id,
     person_id,
+    measurement_concept_id,
     visit_occurrence_id,
     event_datetime,
     analyte,

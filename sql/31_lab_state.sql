@@ -1,7 +1,7 @@
 -- 31_lab_state: the latest value of every analyte at every lab time point of a person.
 -- grain:  one row per (person_id, state_datetime), a time point at which the person has at least
 --         one usable result of a state analyte
--- inputs: dka_lab_points (sql/22), dka_person_diabetes (sql/30)
+-- inputs: dka_lab_points (sql/21), dka_person_diabetes (sql/30)
 -- output: dka_lab_state (person_id, state_datetime, visit_occurrence_id, known_diabetes, and per
 --         analyte dx_<analyte>, rs_<analyte>, rs_<analyte>_datetime)
 -- slots:  diagnosis_lookback_hours, resolution_lookback_hours (float hours),
@@ -14,8 +14,9 @@
 -- * pH and bicarbonate count only from the accepted specimens (the least of the per-specimen
 --   columns of dka_lab_points); other analytes from any specimen. A time point is a point of
 --   dka_lab_points with at least one value of a state analyte from an accepted specimen.
--- * Several results of one analyte at one time point were combined by sql/22 (min pH and
---   bicarbonate, mean sodium, chloride and potassium, max of the others).
+-- * Several results of one analyte at one time point were combined by sql/21 (min pH and
+--   bicarbonate, the midpoint of the lowest and highest sodium, chloride and potassium, max of the
+--   others).
 -- * dx_<analyte>: the latest value measured at or before the time point and no more than
 --   diagnosis_lookback_hours before it; rs_<analyte> and rs_<analyte>_datetime the same within
 --   resolution_lookback_hours (the episode recipes further require rs_<analyte>_datetime > onset).

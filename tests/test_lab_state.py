@@ -2,7 +2,7 @@
 
 The recipe is run on ``dka_lab_events`` / ``dka_person_diabetes`` tables built directly in a DuckDB
 session (the intermediate-table contract of DEVELOPERS.md), gathered into time points by
-``sql/22_lab_points.sql`` as a run does. Values are invented; the rules checked
+``sql/21_lab_points.sql`` as a run does. Values are invented; the rules checked
 are the recipe's own (bounded carry-forward, specimens, the anion gap formula).
 
 Anion gap = Na - (Cl + HCO3), with potassium (Na + K) - (Cl + HCO3), measured sodium (CLINICAL.md
@@ -33,7 +33,9 @@ SLOTS = {
     "person_screen": Fragment("true"),
     "state_analytes": STATE_ANALYTES,
 }
-SAME_TIME = {"ph": min, "bicarbonate": min, "sodium": "avg", "chloride": "avg", "potassium": "avg"}
+# several results at one time point (sql/21): most acidotic pH and bicarbonate, the midpoint of the
+# lowest and highest sodium, chloride and potassium (their mean when there are two), else the highest
+SAME_TIME = {"ph": min, "bicarbonate": min, "sodium": "mid", "chloride": "mid", "potassium": "mid"}
 
 
 def at(minutes: float) -> dt.datetime:
@@ -59,9 +61,10 @@ def session(events, diabetes=()):
         con.execute("insert into dka_person_diabetes values (?, ?, 'type1')", [person, at(minutes)])
     # the checked-rows contract sql/22 reads (sql/20): these rows are all usable
     con.execute("create temp view dka_measurement_checked as select person_id, measurement_id, "
-                "visit_occurrence_id, event_datetime, analyte, specimen, value, "
+                "cast(1 as bigint) as measurement_concept_id, visit_occurrence_id, event_datetime, "
+                "analyte, specimen, value, "
                 "cast(null as varchar) as reason, cast(null as varchar) as detail from dka_lab_events")
-    run_recipe(con, "22_lab_points.sql", "dka_lab_points", {})
+    run_recipe(con, "21_lab_points.sql", "dka_lab_points", {})
     return con
 
 
@@ -227,7 +230,7 @@ def reference_state(events, diabetes, slots):
     point: dict[tuple[int, dt.datetime, str], float] = {}
     for key, found in values.items():
         rule = SAME_TIME.get(key[2], max)
-        point[key] = sum(found) / len(found) if rule == "avg" else rule(found)
+        point[key] = (min(found) + max(found)) / 2 if rule == "mid" else rule(found)
     persons = sorted({key[0] for key in point})
     first_diabetes = {}
     for person, minutes in diabetes:

@@ -42,20 +42,25 @@ def test_checked_rows_are_views_and_time_points_live_in_the_scratch_database(tmp
             "'dka_lab_events', 'dka_lab_points') and temporary order by view_name"
         ).fetchall()
         assert views == [("dka_lab_events",), ("dka_lab_points",), ("dka_measurement_checked",)]
-        # the two usable glucose rows (250 and 251 mg/dL) at 09:00 make one time point
+        # the glucose rows (250, its copy and 251 mg/dL) at 09:00 make one time point; results counts
+        # the copy too (the reconciliation subtracts the quarantined copies), the value does not
         points = con.execute("select point_datetime, results, glucose from dka_lab_points").fetchall()
-        assert len(points) == 1 and points[0][1] == 2
+        assert len(points) == 1 and points[0][1] == 3
         assert abs(points[0][2] - 251.0 / 18.016) < 0.01
         reasons = con.execute(
             "select reason, count(*) from dka_measurement_checked group by reason order by reason").fetchall()
-        assert reasons == [("duplicate", 1), ("no_time", 1), (None, 2)]
+        assert reasons == [("no_time", 1), (None, 3)]  # the repeated copy is found by sql/22
+        quarantined = con.execute(
+            "select reason, count(*) from dka_quarantine group by reason order by reason").fetchall()
+        assert quarantined == [("duplicate", 1), ("no_time", 1)]
+        assert con.execute("select count(*) from dka_lab_events").fetchall()[0][0] == 2
         folder = Path(con.execute(
             "select path from duckdb_databases() where database_name = 'dka_work'").fetchall()[0][0]).parent
         assert folder.is_dir()
         # a second run in the same session replaces the tables and reuses the scratch database
         prepare_lab_events(extract)
         assert con.execute("select count(*) from dka_measurement_checked").fetchall()[0][0] == 4
-        assert con.execute("select sum(results) from dka_lab_points").fetchall()[0][0] == 2
+        assert con.execute("select sum(results) from dka_lab_points").fetchall()[0][0] == 3
     del extract
     gc.collect()
     assert not folder.exists()
@@ -88,8 +93,11 @@ def test_the_scoped_quarantine_reading_finds_every_row_a_full_reading_finds(tmp_
         con = extract.con
         scoped = con.execute("select source_row_id, reason from dka_quarantine "
                              "where source_table = 'measurement' order by 1").fetchall()
-        full = con.execute("select measurement_id, reason from dka_measurement_checked "
-                           "where reason is not null order by 1").fetchall()
+        full = con.execute(
+            "select measurement_id, reason from dka_measurement_checked where reason is not null "
+            "union all select duplicates.measurement_id, 'duplicate' from dka_measurement_duplicates as duplicates "
+            "inner join dka_measurement_checked as checked on checked.measurement_id = duplicates.measurement_id "
+            "where checked.reason is null order by 1").fetchall()
         assert scoped == full
         assert sorted(reason for _, reason in scoped) == [
             "before_birth", "duplicate", "implausible", "no_time", "person_unknown"]

@@ -280,7 +280,8 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
             rows_read = _scalar(session, "select count(*) from measurement", "measurement rows")
             lab_persons, rows_used = _pair(
                 session, "select count(distinct case when results > 0 then person_id end), "
-                "coalesce(sum(results), 0) from dka_lab_points", "lab events")
+                "coalesce(sum(results), 0) - (select count(*) from dka_quarantine where source_table = "
+                "'measurement' and reason = 'duplicate') from dka_lab_points", "lab events")
             rows_quarantined = _scalar(
                 session, "select count(*) from dka_quarantine where source_table = 'measurement'", "quarantine")
             rows_other = _scalar(

@@ -1,22 +1,21 @@
--- 18_measurement_duplicates: measurement rows that repeat an earlier row of a DKA analyte.
+-- 22_measurement_duplicates: measurement rows that repeat an earlier row of a DKA analyte.
 -- grain:  one row per duplicate measurement_id (a later copy; the copy with the lowest
 --         measurement_id is kept and is not listed)
--- inputs: measurement (CDM view); dka_concept_lab
+-- inputs: measurement (CDM view); dka_concept_lab; dka_lab_points (sql/21)
 -- output: dka_measurement_duplicates (measurement_id)
 --
 -- A duplicate has the same person, concept, datetime, unit and value (value_as_number,
 -- value_as_concept_id and, with no number, the value_source_value text without case or spaces)
--- as a row with a lower measurement_id. sql/20 gives these rows the reason `duplicate` (the last
--- reason: copies share every other reason, so only usable rows are ever listed there).
+-- as a row with a lower measurement_id. sql/24 gives these rows the reason `duplicate` when they
+-- have no other (the last reason: copies share every other reason, so a copy of an excluded row
+-- keeps that row's reason) and sql/23 leaves them out of the lab events.
 --
--- Two passes, so that the full comparison runs on a few rows only:
--- 1. time points that may hold a repeat: the (person, datetime) groups of DKA-analyte rows where
---    some concept occurs twice. Each row gets the bit 2^(|concept_id mod 29|); a group where the
---    sum of its rows' bits differs from their bitwise or has two rows sharing a bit: the same
---    concept, or two concepts sharing a bit (then the full comparison below finds no repeat and
---    nothing is lost; a repeat is never missed). One narrow hash aggregate over three
---    columns; at a million persons it replaced a window over every row ordered by concept and
---    time (benchmarks/bench_labs.py; it finds the same rows).
+-- The full comparison runs on a few rows only:
+-- 1. time points that may hold a repeat: those of dka_lab_points whose usable rows' bits
+--    2^(|concept_id mod 29|) sum to more than their bitwise or (two usable rows share a bit: the
+--    same concept, or two concepts sharing a bit, where the comparison below finds no repeat;
+--    a repeat of a usable row is never missed). The bits come with the time points, which are
+--    built anyway, so finding repeats costs no pass of its own over every row.
 -- 2. the rows at those time points, ranked within the full duplicate key by measurement_id.
 with
 
@@ -26,33 +25,12 @@ lab_concepts as (
     from dka_concept_lab
 ),
 
-concept_bits as (
-    select
-        measurement.person_id,
-        measurement.measurement_datetime,
-        cast(power(2, abs(measurement.measurement_concept_id % 29)) as bigint) as concept_bit
-    from measurement
-    where measurement.measurement_datetime is not null
-        and measurement.person_id is not null
-        and measurement.measurement_concept_id in (select lab_concepts.concept_id from lab_concepts)
-),
-
-time_point_bits as (
-    select
-        concept_bits.person_id,
-        concept_bits.measurement_datetime,
-        sum(concept_bits.concept_bit) as bit_sum,
-        bit_or(concept_bits.concept_bit) as bit_union
-    from concept_bits
-    group by concept_bits.person_id, concept_bits.measurement_datetime
-),
-
 collision_points as (
     select
-        time_point_bits.person_id,
-        time_point_bits.measurement_datetime
-    from time_point_bits
-    where time_point_bits.bit_sum <> time_point_bits.bit_union
+        dka_lab_points.person_id,
+        dka_lab_points.point_datetime as measurement_datetime
+    from dka_lab_points
+    where dka_lab_points.concept_bits <> dka_lab_points.concept_bit_union
 ),
 
 collisions as (

@@ -1,12 +1,13 @@
--- 23_quarantine: every source row the pipeline cannot use, with one reason.
+-- 24_quarantine: every source row the pipeline cannot use, with one reason.
 -- grain:  one row per excluded source row (source_table, source_row_id)
--- inputs: dka_measurement_checked; drug_exposure, person (CDM views); dka_concept_drug,
---         dka_concept_route
+-- inputs: dka_measurement_checked (sql/20), dka_measurement_duplicates (sql/22); drug_exposure,
+--         person (CDM views); dka_concept_drug, dka_concept_route
 -- output: dka_quarantine (source_table, source_row_id, person_id, reason, detail)
 --
--- measurement: the rows sql/20 gave a reason. (In DuckDB, sql/20 is read here in the scope of the
--- time points sql/22 found holding an excluded row, and of rows with no person or no time: the
--- same rows, from a fraction of the work; cohort/_labs.py.)
+-- measurement: the rows sql/20 gave a reason, and the repeated copies of usable rows (sql/22) as
+-- `duplicate` (the last reason). (In DuckDB, sql/20 is read here in the scope of the time points
+-- sql/21 found holding an excluded row or a repeated concept, and of rows with no person or no
+-- time: the same rows, from a fraction of the work; cohort/_labs.py.)
 -- drug_exposure: intravenous regular-insulin rows (the infusions the features read), first
 -- reason that applies: person_unknown, no_time (drug_exposure_start_datetime null: an infusion
 -- cannot be placed within hours), end_before_start (drug_exposure_end_datetime earlier than the
@@ -21,6 +22,28 @@ checked as (
         reason,
         detail
     from dka_measurement_checked
+),
+
+duplicates as (
+    select
+        measurement_id
+    from dka_measurement_duplicates
+),
+
+-- a usable row that repeats an earlier one gets the last reason
+measurement_reasons as (
+    select
+        checked.measurement_id,
+        checked.person_id,
+        coalesce(checked.reason, case when duplicates.measurement_id is not null then 'duplicate' end) as reason,
+        case
+            when checked.reason is not null then checked.detail
+            when duplicates.measurement_id is not null
+                then 'same person, concept, time, unit and value as a row with a lower measurement_id'
+        end as detail
+    from checked
+    left join duplicates
+        on duplicates.measurement_id = checked.measurement_id
 ),
 
 regular_insulin as (
@@ -50,7 +73,7 @@ measurement_rows as (
         person_id,
         reason,
         detail
-    from checked
+    from measurement_reasons
     where reason is not null
 ),
 

@@ -1,6 +1,7 @@
--- 21_lab_events: the usable lab results of the DKA analytes, in canonical units.
--- grain:  one row per usable measurement row (reason is null in dka_measurement_checked)
--- inputs: dka_measurement_checked
+-- 23_lab_events: the usable lab results of the DKA analytes, in canonical units.
+-- grain:  one row per usable measurement row (reason is null in dka_measurement_checked and not
+--         a repeated copy listed in dka_measurement_duplicates)
+-- inputs: dka_measurement_checked (sql/20), dka_measurement_duplicates (sql/22)
 -- output: dka_lab_events (person_id, measurement_id, visit_occurrence_id, event_datetime,
 --         analyte, specimen, value)
 -- Canonical units: mmol/L (glucose, ketones, bicarbonate, electrolytes, anion gap), pH unitless,
@@ -20,17 +21,26 @@ checked as (
     from dka_measurement_checked
 ),
 
+duplicates as (
+    select
+        dka_measurement_duplicates.measurement_id
+    from dka_measurement_duplicates
+),
+
 usable as (
     select
-        person_id,
-        measurement_id,
-        visit_occurrence_id,
-        event_datetime,
-        analyte,
-        specimen,
-        value
+        checked.person_id,
+        checked.measurement_id,
+        checked.visit_occurrence_id,
+        checked.event_datetime,
+        checked.analyte,
+        checked.specimen,
+        checked.value
     from checked
-    where reason is null
+    left join duplicates
+        on duplicates.measurement_id = checked.measurement_id
+    where checked.reason is null
+        and duplicates.measurement_id is null
 ),
 
 final as (
