@@ -165,7 +165,7 @@ from final
 SQL_LABS = """
 -- features_labs: lab events the course, hypoglycaemia, hypokalaemia and HbA1c features read
 -- grain:  one row per usable lab result of persons with an episode, in their time span
--- inputs: dka_lab_events (recipe 21), dka_feature_persons
+-- inputs: dka_lab_events (recipe 23), dka_feature_persons
 -- output: person_id, event_datetime, analyte, value
 with
 
