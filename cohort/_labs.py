@@ -33,12 +33,16 @@ Python (the worked-example tests check both against published factors).
 
 from __future__ import annotations
 
+import datetime as dt
 import shutil
 import tempfile
-import datetime as dt
 import time
 import weakref
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
+from typing import Any
+
+import duckdb
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -60,6 +64,7 @@ __all__ = [
     "data_quality_frame",
     "default_as_of",
     "convert",
+    "checked_in_scope",
 ]
 
 #: Recipe file -> the session table it makes, in run order.
@@ -282,6 +287,37 @@ def data_quality_frame(counts: Iterable[tuple[object, object, object]]) -> pl.Da
     )
 
 
+@contextmanager
+def checked_in_scope(con: Any, scope: Fragment) -> Iterator[None]:
+    """Within the block, ``dka_measurement_checked`` (and so ``dka_lab_events``) checks only the
+    measurement rows meeting ``scope``; the view over every row comes back after.
+
+    For a reader that keeps only some rows anyway (the quarantine, the features' persons): the
+    check then runs on those rows rather than on every row of a DKA analyte. ``scope`` is a
+    condition on ``measurement`` written by the toolkit. Needs a session prepared by
+    :func:`prepare_lab_events` (its as-of slots are kept in ``dka_lab_run``); in any other session
+    the block runs on the view as it is.
+
+    Examples
+    --------
+    >>> with checked_in_scope(con, Fragment("measurement.person_id = 1")):  # doctest: +SKIP
+    ...     con.sql("select count(*) from dka_lab_events").fetchall()
+    """
+    try:
+        row = con.execute("select results_before from dka_lab_run").fetchall()
+    except duckdb.CatalogException:
+        yield
+        return
+    slots: dict[str, Any] = {"results_before": row[0][0]}
+    con.execute("create or replace temp view dka_measurement_checked as\n"
+                + render_recipe("20_measurement_checked.sql", {**slots, "row_scope": scope}))
+    try:
+        yield
+    finally:
+        con.execute("create or replace temp view dka_measurement_checked as\n"
+                    + render_recipe("20_measurement_checked.sql", {**slots, "row_scope": Fragment("true")}))
+
+
 def prepare_lab_events(
     extract: Extract,
     *,
@@ -333,17 +369,16 @@ def prepare_lab_events(
     register_codelists(con, lists)
     as_of = as_of if as_of is not None else default_as_of()
     slots = lab_slots(as_of)
+    # the run's slots, for checked_in_scope (a later reader re-renders sql/20 with the same as-of)
+    con.execute("create or replace temp table dka_lab_run as select ? as results_before",
+                [slots["results_before"]])
     for recipe, target in LAB_RECIPES:
         step_started = time.perf_counter()
         if target == "dka_quarantine":
-            # read the checked rows in the scope of the excluded rows' time points, then restore
-            # the full view (dka_lab_events and later readers see every row)
-            scoped = {**slots, "row_scope": _QUARANTINE_SCOPE}
-            con.execute("create or replace temp view dka_measurement_checked as\n"
-                        + render_recipe("20_measurement_checked.sql", scoped))
-            run_recipe(con, recipe, target, slots)
-            con.execute("create or replace temp view dka_measurement_checked as\n"
-                        + render_recipe("20_measurement_checked.sql", slots))
+            # read the checked rows in the scope of the excluded rows' time points; the full view
+            # comes back after (dka_lab_events and later readers see every row)
+            with checked_in_scope(con, _QUARANTINE_SCOPE):
+                run_recipe(con, recipe, target, slots)
         elif target in _VIEWS:
             # read by the next recipes only: a view saves writing every checked row
             Identifier(target)

@@ -102,3 +102,19 @@ def test_the_scoped_quarantine_reading_finds_every_row_a_full_reading_finds(tmp_
         assert sorted(reason for _, reason in scoped) == [
             "before_birth", "duplicate", "implausible", "no_time", "person_unknown"]
         assert summary.reconciles and summary.rows_used == 3
+
+
+def test_checked_in_scope_narrows_the_checked_rows_for_the_block_only(tmp_path: Path) -> None:
+    from cohort._labs import checked_in_scope
+    from cohort._sql import Fragment
+
+    with open_extract(_extract(tmp_path)) as extract:
+        prepare_lab_events(extract)
+        con = extract.con
+        assert con.execute("select count(*) from dka_measurement_checked").fetchall()[0][0] == 4
+        with checked_in_scope(con, Fragment("measurement.measurement_datetime is null")):
+            assert con.execute("select count(*), min(reason) from dka_measurement_checked").fetchall() == [
+                (1, "no_time")]
+            assert con.execute("select count(*) from dka_lab_events").fetchall()[0][0] == 0
+        assert con.execute("select count(*) from dka_measurement_checked").fetchall()[0][0] == 4
+        assert con.execute("select count(*) from dka_lab_events").fetchall()[0][0] == 2

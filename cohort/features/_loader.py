@@ -18,6 +18,8 @@ import datetime as dt
 import polars as pl
 
 from cohort._errors import InputError, SchemaError
+from cohort._labs import checked_in_scope
+from cohort._sql import Fragment
 from cohort.features._inputs import FeatureInputs, check_episodes
 from cohort.features._options import FeatureOptions
 
@@ -161,6 +163,10 @@ select
     days_supply
 from final
 """
+
+#: The measurement rows the features' lab query can keep (cohort._labs.checked_in_scope).
+_FEATURE_PERSONS_SCOPE = Fragment(
+    "measurement.person_id in (select dka_feature_persons.person_id from dka_feature_persons)")
 
 SQL_LABS = """
 -- features_labs: lab events the course, hypoglycaemia, hypokalaemia and HbA1c features read
@@ -630,7 +636,9 @@ def load_feature_inputs(
         infusions = _query(con, SQL_INFUSIONS)
         basal = _query(con, render(SQL_DRUG_CLASS, {"drug_classes": ("insulin_basal",)}))
         sglt2 = _query(con, render(SQL_DRUG_CLASS, {"drug_classes": ("sglt2_inhibitor",)}))
-        labs = _query(con, SQL_LABS)
+        # the check of sql/20 runs on the feature persons' rows only (the query keeps no other)
+        with checked_in_scope(con, _FEATURE_PERSONS_SCOPE):
+            labs = _query(con, SQL_LABS)
         visits = _query(con, SQL_VISITS)
         details = (
             _query(con, SQL_VISIT_DETAILS)
