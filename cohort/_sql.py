@@ -137,12 +137,11 @@ def render(text: str, values: Mapping[str, SlotValue], *, recipe: str = "<text>"
 
 def _wanted(text: str) -> set[str]:
     """Slots a recipe reads: its ``{{ slot }}`` markers and the slots its macros name."""
+    from cohort._macros import slot_arguments
+
     wanted = set(_SLOT.findall(text))
     for _, arguments in _MACRO.findall(text):
-        for part in arguments.split(","):
-            key, _, value = part.partition("=")
-            if key.strip() == "only":
-                wanted.add(value.strip())
+        wanted |= slot_arguments(arguments)
     return wanted
 
 

@@ -59,7 +59,7 @@ from cohort._compile import (
     compile_severity,
 )
 from cohort._errors import CohortError, DefinitionError, InputError
-from cohort._labs import prepare_lab_events
+from cohort._labs import LAB_COUNTS_SQL, prepare_lab_events
 from cohort._manifest import build_manifest, utc_now, write_manifest
 from cohort._outputs import check_output_folder, output_folder
 from cohort._sql import Fragment, run_recipe
@@ -722,9 +722,7 @@ def find_episodes(
             with steps.step("person_diabetes", "diabetes records"):
                 run_recipe(con, "30_person_diabetes.sql", "dka_person_diabetes", {})
             persons_total = extract.row_count("person")
-            lab_persons = con.execute(
-                "select count(distinct case when results > 0 then person_id end) from dka_lab_points").fetchall()[0][0]
-            lab_rows = summary.rows_used
+            lab_persons, lab_rows = con.execute(LAB_COUNTS_SQL).fetchall()[0]
 
             frames: list[pl.DataFrame] = []
             attrition_rows: list[dict[str, Any]] = []

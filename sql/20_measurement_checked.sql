@@ -38,11 +38,11 @@
 --
 -- In DuckDB this recipe is a view, read once by sql/21 (every row, gathered by time point) and
 -- once by sql/24 (the rows with a reason, with row_scope set to the rows at time points holding
--- an excluded row or a repeated concept, and the rows with no person or time): each reading is a scan with hash joins
--- to small tables, cheaper than writing tens of millions of rows. So the joins are kept few: the person's
--- facts and a single observation period come from one table of a million rows; the few persons
--- whose merged periods are more than one are looked up in a second, small table; units are
--- matched by (concept_id, unit) integers.
+-- an excluded row or a repeated concept, and the rows with no person or time): each reading is a
+-- scan with hash joins to small tables, cheaper than writing tens of millions of rows. So the
+-- joins are kept few: the person's facts and a single observation period come from one table of
+-- a million rows; the few persons whose merged periods are more than one are looked up in a
+-- second, small table; units are matched by (concept_id, unit) integers.
 with
 
 lab_concepts as (

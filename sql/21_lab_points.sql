@@ -2,9 +2,10 @@
 -- grain:  one row per (person_id, point_datetime) of the checked rows with a person and a time
 -- inputs: dka_measurement_checked (sql/20)
 -- output: dka_lab_points (person_id, point_datetime, visit_occurrence_id, results, excluded,
---         concept_bits, concept_bit_union, and one column
---         per analyte: glucose, bhb, urine_ketones, sodium, chloride, potassium, anion_gap, anion_gap_with_k, hba1c, creatinine;
---         pH and bicarbonate one column per specimen: ph_<specimen>, bicarbonate_<specimen>)
+--         concept_bits, concept_bit_union, and one column per analyte: glucose, bhb,
+--         urine_ketones, sodium, chloride, potassium, anion_gap, anion_gap_with_k, hba1c,
+--         creatinine; pH and bicarbonate one column per specimen: ph_<specimen>,
+--         bicarbonate_<specimen>)
 --
 -- Rules (toolkit choices, common practice unless a source is named):
 -- * Several results of one analyte at one time point: the most acidotic pH and bicarbonate (min),
@@ -26,8 +27,7 @@
 -- * sql/24 reads only the rows at time points with excluded > 0 or differing bits (and the rows
 --   with no person or no time, which are never usable and have no time point): every row with a
 --   reason, and every repeated copy, is among them.
--- Built once per run and read by every definition's lab state: a DKA analyte result is read from
--- the source twice in all (here and for the quarantine), not once per definition.
+-- Built once per run and read by every definition's lab state, not once per definition.
 with
 
 checked as (

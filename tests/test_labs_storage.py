@@ -46,6 +46,8 @@ def test_checked_rows_are_views_and_time_points_live_in_the_scratch_database(tmp
         # the copy too (the reconciliation subtracts the quarantined copies), the value does not
         points = con.execute("select point_datetime, results, glucose from dka_lab_points").fetchall()
         assert len(points) == 1 and points[0][1] == 3
+        # the highest glucose, in mmol/L: mg/dL / 18.016 (molar mass of glucose 180.16 g/mol;
+        # CLINICAL.md formulas, the factor of units.csv)
         assert abs(points[0][2] - 251.0 / 18.016) < 0.01
         reasons = con.execute(
             "select reason, count(*) from dka_measurement_checked group by reason order by reason").fetchall()

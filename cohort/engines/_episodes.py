@@ -236,7 +236,7 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
                    overrides: Mapping[str, object] | None, quiet: bool) -> Any:
     from cohort._agreement import agreement_table
     from cohort._codelists import read_codelists
-    from cohort._labs import default_as_of
+    from cohort._labs import LAB_COUNTS_SQL, default_as_of
     from cohort._manifest import build_manifest, utc_now, write_manifest
     from cohort.engines._dialect import recipe_values
     from cohort.engines._run import (
@@ -278,10 +278,7 @@ def _run_on_engine(engine: str, definitions: Sequence[Any], *, out: str | Path |
             as_of = default_as_of()
             run_lab_steps(session, as_of=as_of)
             rows_read = _scalar(session, "select count(*) from measurement", "measurement rows")
-            lab_persons, rows_used = _pair(
-                session, "select count(distinct case when results > 0 then person_id end), "
-                "coalesce(sum(results), 0) - (select count(*) from dka_quarantine where source_table = "
-                "'measurement' and reason = 'duplicate') from dka_lab_points", "lab events")
+            lab_persons, rows_used = _pair(session, LAB_COUNTS_SQL, "lab events")
             rows_quarantined = _scalar(
                 session, "select count(*) from dka_quarantine where source_table = 'measurement'", "quarantine")
             rows_other = _scalar(
