@@ -39,7 +39,7 @@ import tempfile
 import time
 import weakref
 from collections.abc import Callable, Iterable, Iterator
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -107,6 +107,9 @@ _QUARANTINE_SCOPE = Fragment(
     "or dka_lab_points.concept_bits <> dka_lab_points.concept_bit_union) "
     "and dka_lab_points.person_id = measurement.person_id "
     "and dka_lab_points.point_datetime = measurement.measurement_datetime))")
+
+#: The recipes that read the checked rows in :data:`_QUARANTINE_SCOPE` (from one kept reading).
+_SCOPED = frozenset({"dka_measurement_duplicates", "dka_quarantine"})
 
 #: Persons with a usable result, and usable rows: the time points' counts less the repeated copies
 #: the quarantine lists (``results`` counts copies; see ``sql/21``). Run on every engine.
@@ -328,6 +331,30 @@ def checked_in_scope(con: Any, scope: Fragment) -> Iterator[None]:
         checked_view(Fragment("true"))
 
 
+@contextmanager
+def _kept_in_scope(con: Any, scope: Fragment) -> Iterator[None]:
+    """Within the block, ``dka_measurement_checked`` is the checked rows meeting ``scope``, checked
+    once and kept in a temporary table (``dka_measurement_scoped``), so that several recipes read
+    them without checking them again; the view over every row comes back after.
+
+    The quarantine scope holds about 5 of 57 million rows at a million persons; ``sql/22`` and
+    ``sql/24`` both read them (measured at a million persons: one kept reading for both, 9.0 s,
+    against 4.5 s + 8.5 s for a reading each).
+    """
+    with checked_in_scope(con, scope):
+        con.execute("create or replace temp table dka_measurement_scoped as "
+                    "select * from dka_measurement_checked")
+        con.execute("create or replace temp view dka_measurement_checked as "
+                    "select * from dka_measurement_scoped")
+        try:
+            yield
+        finally:
+            # the scoped view goes before the table it reads; checked_in_scope then puts back
+            # the view over every row
+            con.execute("drop view if exists dka_measurement_checked")
+            con.execute("drop table if exists dka_measurement_scoped")
+
+
 def prepare_lab_events(
     extract: Extract,
     *,
@@ -382,23 +409,29 @@ def prepare_lab_events(
     # the run's slots, for checked_in_scope (a later reader re-renders sql/20 with the same as-of)
     con.execute("create or replace temp table dka_lab_run as select ? as results_before",
                 [slots["results_before"]])
-    for recipe, target in LAB_RECIPES:
-        step_started = time.perf_counter()
-        if target == "dka_quarantine":
-            # read the checked rows in the scope of the excluded rows' time points; the full view
-            # comes back after (dka_lab_events and later readers see every row)
-            with checked_in_scope(con, _QUARANTINE_SCOPE):
+    with ExitStack() as scope:
+        scoped = False
+        for recipe, target in LAB_RECIPES:
+            step_started = time.perf_counter()
+            if target in _SCOPED and not scoped:
+                scoped = True
+                # the repeats (sql/22) and the quarantine (sql/24) read the checked rows in the
+                # scope of the time points holding an excluded row or a repeated concept; those
+                # rows are checked once, kept, and read by both; the full view comes back after
+                # sql/24 (dka_lab_events and later readers see every row)
+                scope.enter_context(_kept_in_scope(con, _QUARANTINE_SCOPE))
+            if target in _VIEWS:
+                # read by the next recipes only: a view saves writing every checked row
+                Identifier(target)
+                con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, slots)}")
+            elif target in _STORED:
+                _store(con, _work_catalog(extract), target, render_recipe(recipe, slots))
+            else:
                 run_recipe(con, recipe, target, slots)
-        elif target in _VIEWS:
-            # read by the next recipes only: a view saves writing every checked row
-            Identifier(target)
-            con.execute(f"create or replace temp view {target} as\n{render_recipe(recipe, slots)}")
-        elif target in _STORED:
-            _store(con, _work_catalog(extract), target, render_recipe(recipe, slots))
-        else:
-            run_recipe(con, recipe, target, slots)
-        if on_step is not None:
-            on_step(recipe, time.perf_counter() - step_started)
+            if target == "dka_quarantine":
+                scope.close()
+            if on_step is not None:
+                on_step(recipe, time.perf_counter() - step_started)
 
     step_started = time.perf_counter()
     rows_read = extract.row_count("measurement")

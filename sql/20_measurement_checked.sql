@@ -4,7 +4,8 @@
 -- inputs: measurement, person, death, observation_period (CDM views); dka_concept_lab,
 --         dka_concept_unit, dka_concept_ketone, dka_codelist_ketone
 -- output: dka_measurement_checked (measurement_id, person_id, measurement_concept_id,
---         visit_occurrence_id, event_datetime, analyte, specimen, value, reason, detail)
+--         visit_occurrence_id, event_datetime, analyte, specimen, value, reason, detail,
+--         unit_concept_id, value_as_number, value_as_concept_id, value_text_key)
 --
 -- Value: value_as_number * multiply + add from the (analyte, unit_concept_id) rule of units.csv;
 -- unit_concept_id 0 or null is "no unit", accepted only where units.csv has a `none` line for the
@@ -36,9 +37,14 @@
 -- slot:   row_scope, a toolkit-made condition on `measurement` limiting the rows checked (`true`
 --         for every row; cohort/_labs.py narrows it for the quarantine reading, see below)
 --
+-- The last four columns are the source row's own repeat key (unit_concept_id with 0 as null, the
+-- value as given, and with no number the value_source_value text without case or spaces), which
+-- sql/22 compares.
+--
 -- In DuckDB this recipe is a view, read once by sql/21 (every row, gathered by time point) and
--- once by sql/24 (the rows with a reason, with row_scope set to the rows at time points holding
--- an excluded row or a repeated concept, and the rows with no person or time): each reading is a
+-- once for sql/22 and sql/24 together (row_scope set to the rows at time points holding an
+-- excluded row or a repeated concept, and the rows with no person or time; those rows are kept
+-- for both recipes, cohort/_labs.py): each reading is a
 -- scan with hash joins to small tables, cheaper than writing tens of millions of rows. So the
 -- joins are kept few: the person's facts and a single observation period come from one table of
 -- a million rows; the few persons whose merged periods are more than one are looked up in a
@@ -291,6 +297,8 @@ valued as (
         analyte,
         specimen,
         value_as_number,
+        value_as_concept_id,
+        value_source_value,
         unit_concept_id,
         unit_source_value,
         known_person_id,
@@ -327,6 +335,8 @@ reasoned as (
         low,
         high,
         value,
+        value_as_concept_id,
+        value_source_value,
         case
             when known_person_id is null then 'person_unknown'
             when measurement_datetime is null then 'no_time'
@@ -378,7 +388,13 @@ final as (
                     else 'value ' || cast(value as varchar) || ' (canonical unit) outside '
                         || cast(low as varchar) || ' .. ' || cast(high as varchar)
                 end
-        end end as detail
+        end end as detail,
+        unit_concept_id,
+        value_as_number,
+        value_as_concept_id,
+        case
+            when value_as_number is null then lower(replace(trim(value_source_value), ' ', ''))
+        end as value_text_key
     from reasoned
 )
 
@@ -392,5 +408,9 @@ select
     specimen,
     value,
     reason,
-    detail
+    detail,
+    unit_concept_id,
+    value_as_number,
+    value_as_concept_id,
+    value_text_key
 from final
