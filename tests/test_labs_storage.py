@@ -37,6 +37,9 @@ def test_checked_rows_are_views_and_time_points_live_in_the_scratch_database(tmp
             "('dka_measurement_checked', 'dka_lab_events', 'dka_lab_points') order by table_name"
         ).fetchall()
         assert stored == [("dka_lab_points", "dka_work")]
+        # the rows kept for sql/22 and sql/24 (cohort._labs._kept_in_scope) are gone after the run
+        assert con.execute("select count(*) from duckdb_tables() "
+                           "where table_name = 'dka_measurement_scoped'").fetchall() == [(0,)]
         views = con.execute(
             "select view_name from duckdb_views() where view_name in ('dka_measurement_checked', "
             "'dka_lab_events', 'dka_lab_points') and temporary order by view_name"
@@ -77,8 +80,9 @@ def test_on_step_reports_every_recipe_then_the_accounting(tmp_path: Path) -> Non
 
 
 def test_the_scoped_quarantine_reading_finds_every_row_a_full_reading_finds(tmp_path: Path) -> None:
-    """sql/23 reads sql/20 only at time points holding an excluded row (cohort._labs): exact by
-    construction; checked here on rows of several reasons, against the full reading."""
+    """sql/22 and sql/24 read sql/20 only at time points holding an excluded row or a repeated
+    concept, checked once and kept for both (cohort._labs): exact by construction; checked here
+    on rows of several reasons, and on the repeats, against the full reading."""
     cdm = MiniCdm()
     cdm.person(1, birth="1980-05-01")
     cdm.person(2, birth="1990-01-01")
@@ -101,6 +105,12 @@ def test_the_scoped_quarantine_reading_finds_every_row_a_full_reading_finds(tmp_
             "inner join dka_measurement_checked as checked on checked.measurement_id = duplicates.measurement_id "
             "where checked.reason is null order by 1").fetchall()
         assert scoped == full
+        # sql/22 over every checked row finds the same repeats as over the kept rows
+        from cohort._labs import lab_slots
+        from cohort._sql import render_recipe
+        every = con.execute(render_recipe("22_measurement_duplicates.sql", lab_slots())).fetchall()
+        kept = con.execute("select measurement_id from dka_measurement_duplicates").fetchall()
+        assert sorted(every) == sorted(kept) and len(kept) == 1
         assert sorted(reason for _, reason in scoped) == [
             "before_birth", "duplicate", "implausible", "no_time", "person_unknown"]
         assert summary.reconciles and summary.rows_used == 3
