@@ -338,8 +338,9 @@ def _kept_in_scope(con: Any, scope: Fragment) -> Iterator[None]:
     them without checking them again; the view over every row comes back after.
 
     The quarantine scope holds about 5 of 57 million rows at a million persons; ``sql/22`` and
-    ``sql/24`` both read them (measured at a million persons: one kept reading for both, 9.0 s,
-    against 4.5 s + 8.5 s for a reading each).
+    ``sql/24`` both read them. Measured at a million persons, side by side
+    (``benchmarks/bench_labs.py --baseline``): the two recipes 9.7 s against 13.8 s for a reading
+    each; in the whole episodes step the difference was within the machine's run-to-run spread.
     """
     with checked_in_scope(con, scope):
         con.execute("create or replace temp table dka_measurement_scoped as "
