@@ -108,9 +108,6 @@ _QUARANTINE_SCOPE = Fragment(
     "and dka_lab_points.person_id = measurement.person_id "
     "and dka_lab_points.point_datetime = measurement.measurement_datetime))")
 
-#: The recipes that read the checked rows in :data:`_QUARANTINE_SCOPE` (from one kept reading).
-_SCOPED = frozenset({"dka_measurement_duplicates", "dka_quarantine"})
-
 #: Persons with a usable result, and usable rows: the time points' counts less the repeated copies
 #: the quarantine lists (``results`` counts copies; see ``sql/21``). Run on every engine.
 LAB_COUNTS_SQL = (
@@ -411,11 +408,9 @@ def prepare_lab_events(
     con.execute("create or replace temp table dka_lab_run as select ? as results_before",
                 [slots["results_before"]])
     with ExitStack() as scope:
-        scoped = False
         for recipe, target in LAB_RECIPES:
             step_started = time.perf_counter()
-            if target in _SCOPED and not scoped:
-                scoped = True
+            if target == "dka_measurement_duplicates":
                 # the repeats (sql/22) and the quarantine (sql/24) read the checked rows in the
                 # scope of the time points holding an excluded row or a repeated concept; those
                 # rows are checked once, kept, and read by both; the full view comes back after
