@@ -1,6 +1,8 @@
 -- 23_lab_events: the usable lab results of the DKA analytes, in canonical units.
 -- grain:  one row per usable measurement row (reason is null in dka_measurement_checked and not
---         a repeated copy listed in dka_measurement_duplicates)
+--         a repeated copy listed in dka_measurement_duplicates): every row whose measurement_id
+--         sql/22 lists is left out, and the copies it lists as kept are added back (so that one
+--         copy of a row given twice, ids included, is used)
 -- inputs: dka_measurement_checked (sql/20), dka_measurement_duplicates (sql/22)
 -- output: dka_lab_events (person_id, measurement_id, visit_occurrence_id, event_datetime,
 --         analyte, specimen, value)
@@ -21,13 +23,26 @@ checked as (
     from dka_measurement_checked
 ),
 
-duplicates as (
-    select
+listed_ids as (
+    select distinct
         dka_measurement_duplicates.measurement_id
     from dka_measurement_duplicates
 ),
 
-usable as (
+kept_copies as (
+    select
+        dka_measurement_duplicates.person_id,
+        dka_measurement_duplicates.measurement_id,
+        dka_measurement_duplicates.visit_occurrence_id,
+        dka_measurement_duplicates.event_datetime,
+        dka_measurement_duplicates.analyte,
+        dka_measurement_duplicates.specimen,
+        dka_measurement_duplicates.value
+    from dka_measurement_duplicates
+    where dka_measurement_duplicates.kept
+),
+
+unlisted as (
     select
         checked.person_id,
         checked.measurement_id,
@@ -37,10 +52,18 @@ usable as (
         checked.specimen,
         checked.value
     from checked
-    left join duplicates
-        on duplicates.measurement_id = checked.measurement_id
+    left join listed_ids
+        on listed_ids.measurement_id = checked.measurement_id
     where checked.reason is null
-        and duplicates.measurement_id is null
+        and listed_ids.measurement_id is null
+),
+
+usable as (
+    select person_id, measurement_id, visit_occurrence_id, event_datetime, analyte, specimen, value
+    from unlisted
+    union all
+    select person_id, measurement_id, visit_occurrence_id, event_datetime, analyte, specimen, value
+    from kept_copies
 ),
 
 final as (

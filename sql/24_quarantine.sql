@@ -4,8 +4,9 @@
 --         person (CDM views); dka_concept_drug, dka_concept_route
 -- output: dka_quarantine (source_table, source_row_id, person_id, reason, detail)
 --
--- measurement: the rows sql/20 gave a reason, and the repeated copies of usable rows (sql/22) as
--- `duplicate` (the last reason). (In DuckDB, sql/20 is read here in the scope of the time points
+-- measurement: the rows sql/20 gave a reason, and the repeated copies of usable rows (sql/22,
+-- kept = false; one row each, so a row given twice with its own measurement_id is quarantined
+-- once) as `duplicate` (the last reason). (In DuckDB, sql/20 is read here in the scope of the time points
 -- sql/21 found holding an excluded row or a repeated concept, and of rows with no person or no
 -- time: the same rows, from a fraction of the work; cohort/_labs.py.)
 -- drug_exposure: intravenous regular-insulin rows (the infusions the features read), first
@@ -24,26 +25,36 @@ checked as (
     from dka_measurement_checked
 ),
 
-duplicates as (
+repeats as (
     select
-        measurement_id
+        measurement_id,
+        kept_measurement_id,
+        person_id
     from dka_measurement_duplicates
+    where not kept
 ),
 
--- a usable row that repeats an earlier one gets the last reason
+-- the rows sql/20 gave a reason, and each repeated copy of a usable row (the last reason)
 measurement_reasons as (
     select
         checked.measurement_id,
         checked.person_id,
-        coalesce(checked.reason, case when duplicates.measurement_id is not null then 'duplicate' end) as reason,
-        case
-            when checked.reason is not null then checked.detail
-            when duplicates.measurement_id is not null
-                then 'same person, concept, time, unit and value as a row with a lower measurement_id'
-        end as detail
+        checked.reason,
+        checked.detail
     from checked
-    left join duplicates
-        on duplicates.measurement_id = checked.measurement_id
+    where checked.reason is not null
+    union all
+    select
+        repeats.measurement_id,
+        repeats.person_id,
+        'duplicate' as reason,
+        case
+            when repeats.measurement_id = repeats.kept_measurement_id
+                then 'the same row given twice (measurement_id, person, concept, time, unit and value); one copy is kept'
+            else 'same person, concept, time, unit and value as measurement_id '
+                || cast(repeats.kept_measurement_id as varchar) || ', which is kept'
+        end as detail
+    from repeats
 ),
 
 regular_insulin as (
