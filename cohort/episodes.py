@@ -40,7 +40,7 @@ import datetime as dt
 import time
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import InitVar, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -149,7 +149,10 @@ class EpisodeResult:
     attrition
         definition, step, name, description, persons, episodes, rows; in order per definition.
     quarantine
-        Every excluded source row: source_table, source_row_id, person_id, reason, detail.
+        Every excluded source row: source_table, source_row_id, person_id, reason, detail. When
+        the run wrote a folder, read from its ``quarantine.parquet`` on first use (millions of rows
+        with their detail text at a million persons, not held beside the run's DuckDB buffers);
+        pass ``quarantine=None`` with ``out`` to the constructor for that.
     data_quality
         Counts per table and reason (zeros included).
     agreement
@@ -164,12 +167,32 @@ class EpisodeResult:
 
     episodes: pl.DataFrame
     attrition: pl.DataFrame
-    quarantine: pl.DataFrame
+    quarantine: InitVar[pl.DataFrame | None]
     data_quality: pl.DataFrame
     agreement: pl.DataFrame
     manifest: dict[str, Any]
     code_episodes: pl.DataFrame = field(default_factory=lambda: pl.DataFrame(schema=_CODE_SCHEMA))
     out: Path | None = None
+
+    def __post_init__(self, quarantine: pl.DataFrame | None) -> None:
+        if quarantine is None and self.out is None:
+            msg = "EpisodeResult needs the quarantine frame, or out (a folder holding quarantine.parquet)"
+            raise CohortError(msg)
+        object.__setattr__(self, "_quarantine", quarantine)
+
+
+def _quarantine_of(result: EpisodeResult) -> pl.DataFrame:
+    held = result.__dict__.get("_quarantine")
+    if held is None:
+        held = pl.read_parquet(Path(result.out) / "quarantine.parquet")  # type: ignore[arg-type]
+        object.__setattr__(result, "_quarantine", held)
+    return held  # type: ignore[no-any-return]
+
+
+# a property beside the dataclass's InitVar of the same name (set after the class is made, so that
+# the dataclass does not take it for the field's default)
+EpisodeResult.quarantine = property(  # type: ignore[assignment,method-assign]
+    _quarantine_of, doc="Every excluded source row (read from out/quarantine.parquet when not held).")
 
 
 # --------------------------------------------------------------------------- compiling
@@ -754,7 +777,10 @@ def find_episodes(
                 stay_rows = con.execute(
                     "select visit_occurrence_id, stay_visit_occurrence_id from dka_hospital_stays").fetchall()
                 agreement = agreement_table(finders, [row[0] for row in stay_rows], stays=dict(stay_rows))
-            quarantine = con.sql(
+            # with an output folder the quarantine (2.5 million rows with their detail text at a
+            # million persons) is read from the folder when first asked for, not fetched here
+            # beside DuckDB's buffers
+            quarantine = None if target is not None else con.sql(
                 "select source_table, source_row_id, person_id, reason, detail from dka_quarantine "
                 "order by source_table, source_row_id").pl()
             attrition = pl.DataFrame(attrition_rows, schema=_ATTRITION_SCHEMA)
@@ -790,6 +816,11 @@ def find_episodes(
                     summary.data_quality.write_csv(staging / "data_quality.csv")
                     agreement.write_csv(staging / "agreement.csv")
                     codes.write_parquet(staging / "code_episodes.parquet")
+                    if opened:
+                        # the session's buffers go back before write_manifest reads every table
+                        # for its content hash (at a million persons, hashing the quarantine
+                        # beside the open session was the run's peak memory)
+                        extract.close()
                     manifest = build_manifest(
                         command="episodes", definitions=loaded, source=fingerprint, parameters=parameters,
                         started=started_at, finished=utc_now(), counts=counts,

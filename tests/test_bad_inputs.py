@@ -35,6 +35,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import duckdb
+import polars as pl
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
@@ -688,6 +689,17 @@ def test_quarantine_reaches_data_quality_csv_through_the_command(tmp_path: Path,
     lines = (tmp_path / "out" / "data_quality.csv").read_text().splitlines()
     assert "measurement,implausible,5" in lines
     assert "measurement,person_unknown,0" in lines
+
+
+def test_quarantine_of_a_written_run_is_read_from_its_folder(tmp_path: Path) -> None:
+    """find_episodes with out reads result.quarantine from out/quarantine.parquet when asked."""
+    from cohort.episodes import find_episodes
+
+    case = QUARANTINED[3]  # negative or absurd values
+    path = _build(case, tmp_path, "parquet")
+    result = find_episodes(path, ["consensus-2024"], out=tmp_path / "out")
+    assert result.quarantine.filter(pl.col("reason") == "implausible").height == 5
+    assert result.quarantine.equals(pl.read_parquet(tmp_path / "out" / "quarantine.parquet"))
 
 
 # ----------------------------------------------------------------------------- ACCEPTED

@@ -31,6 +31,7 @@ import json
 import polars as pl
 import pytest
 
+from cohort._errors import CohortError
 from cohort.episodes import CODE_FINDER, EPISODE_COLUMNS, find_episodes
 from tests.cdmkit import MiniCdm
 
@@ -316,6 +317,21 @@ def test_outputs_written_in_contract(run):
     assert manifest["source"]["digest"]
     assert manifest["packages"]["duckdb"]
     assert not [p for p in out.parent.iterdir() if p.name.startswith(".out.")]   # no staging left
+
+
+def test_quarantine_of_a_written_run_is_the_folders_and_the_same_without_a_folder(run):
+    """With out, result.quarantine is read from out/quarantine.parquet on first use (not held
+    beside the run's DuckDB session); the rows are those of a run without a folder."""
+    from cohort.episodes import EpisodeResult
+
+    written = run.quarantine
+    assert written.equals(pl.read_parquet(run.out / "quarantine.parquet"))
+    assert tuple(written.columns) == ("source_table", "source_row_id", "person_id", "reason", "detail")
+    held = find_episodes(run.out.parent / "extract", DEFINITIONS)
+    assert held.out is None and held.quarantine.equals(written)
+    with pytest.raises(CohortError, match="needs the quarantine frame, or out"):
+        EpisodeResult(episodes=held.episodes, attrition=held.attrition, quarantine=None,
+                      data_quality=held.data_quality, agreement=held.agreement, manifest={})
 
 
 def test_refuses_a_folder_with_other_files(tmp_path):
