@@ -67,28 +67,20 @@ ranked as (
         collisions.analyte,
         collisions.specimen,
         collisions.value,
-        row_number() over (
-            partition by
-                collisions.person_id,
-                collisions.measurement_concept_id,
-                collisions.event_datetime,
-                collisions.unit_concept_id,
-                collisions.value_as_number,
-                collisions.value_as_concept_id,
-                collisions.value_text_key
-            order by collisions.measurement_id, collisions.visit_occurrence_id
-        ) as copy_number,
-        min(collisions.measurement_id) over (
-            partition by
-                collisions.person_id,
-                collisions.measurement_concept_id,
-                collisions.event_datetime,
-                collisions.unit_concept_id,
-                collisions.value_as_number,
-                collisions.value_as_concept_id,
-                collisions.value_text_key
-        ) as kept_measurement_id
+        row_number() over repeat_order as copy_number,
+        first_value(collisions.measurement_id) over repeat_order as kept_measurement_id
     from collisions
+    window repeat_order as (
+        partition by
+            collisions.person_id,
+            collisions.measurement_concept_id,
+            collisions.event_datetime,
+            collisions.unit_concept_id,
+            collisions.value_as_number,
+            collisions.value_as_concept_id,
+            collisions.value_text_key
+        order by collisions.measurement_id, collisions.visit_occurrence_id
+    )
 ),
 
 repeats as (
