@@ -83,33 +83,19 @@ ranked as (
     )
 ),
 
-repeats as (
-    select
-        ranked.measurement_id,
-        false as kept,
-        ranked.kept_measurement_id,
-        ranked.person_id,
-        ranked.visit_occurrence_id,
-        ranked.event_datetime,
-        ranked.analyte,
-        ranked.specimen,
-        ranked.value
+repeated_ids as (
+    select distinct
+        ranked.measurement_id
     from ranked
     where ranked.copy_number > 1
 ),
 
-repeated_ids as (
-    select distinct
-        repeats.measurement_id
-    from repeats
-),
-
--- a kept copy whose id a repeat shares: sql/23 removes every row of a listed id, so it is listed
--- to be added back
-kept_copies as (
+-- every repeat (kept false), and a kept copy whose id a repeat shares (kept true: sql/23 removes
+-- every row of a listed id, so it is listed to be added back)
+combined as (
     select
         ranked.measurement_id,
-        true as kept,
+        ranked.copy_number = 1 as kept,
         ranked.kept_measurement_id,
         ranked.person_id,
         ranked.visit_occurrence_id,
@@ -118,21 +104,10 @@ kept_copies as (
         ranked.specimen,
         ranked.value
     from ranked
-    inner join repeated_ids
+    left join repeated_ids
         on repeated_ids.measurement_id = ranked.measurement_id
-    where ranked.copy_number = 1
-),
-
-combined as (
-    select
-        measurement_id, kept, kept_measurement_id, person_id, visit_occurrence_id, event_datetime,
-        analyte, specimen, value
-    from repeats
-    union all
-    select
-        measurement_id, kept, kept_measurement_id, person_id, visit_occurrence_id, event_datetime,
-        analyte, specimen, value
-    from kept_copies
+    where ranked.copy_number > 1
+        or repeated_ids.measurement_id is not null
 ),
 
 final as (
