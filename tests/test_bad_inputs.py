@@ -698,6 +698,7 @@ def test_quarantine_of_a_written_run_is_read_from_its_folder(tmp_path: Path) -> 
     case = QUARANTINED[3]  # negative or absurd values
     path = _build(case, tmp_path, "parquet")
     result = find_episodes(path, ["consensus-2024"], out=tmp_path / "out")
+    assert result.__dict__["_quarantine"] is None  # not fetched during the run
     assert result.quarantine.filter(pl.col("reason") == "implausible").height == 5
     assert result.quarantine.equals(pl.read_parquet(tmp_path / "out" / "quarantine.parquet"))
 
