@@ -411,3 +411,32 @@ def test_episode_loop_narrowing_keeps_the_chain_and_restores_the_tables(tmp_path
             run_recipe(con, recipe, f"{table}_again", slots)
             again = con.sql(f"select * from {table}_again").pl()
             assert kept.sort(kept.columns).equals(again.sort(again.columns)), table
+
+
+def test_definitions_accepting_other_specimens_in_one_run_give_their_own_episodes(tmp_path):
+    # The 2024 consensus definition (Umpierrez et al., Diabetes Care 2024;47:1257-1275) accepts pH
+    # of any specimen; a copy of it restricted to venous pH (timing.ph_specimens, a toolkit
+    # option) must not see an arterial-only acidosis. In one run the two share the lab step's
+    # time points and get one lab state each, which must be the one each alone would give.
+    # Person 1: classic DKA on venous pH, found by both. Person 2: glucose 20 mmol/L, BHB 5.0,
+    # bicarbonate 20 (not < 18), arterial pH 7.10 only: acidosis by pH alone, from an arterial
+    # sample, so found by the full definition only.
+    from cohort.definitions import load_definition, parse_definition
+
+    cdm = MiniCdm()
+    adult(cdm, 1)
+    classic(cdm, 1, "2024-03-01", visit_id=10, end="2024-03-04 12:00")
+    adult(cdm, 2)
+    cdm.visit(20, person_id=2, start="2024-04-01 09:00", end="2024-04-03 12:00", kind="ERIP")
+    panel(cdm, 2, "2024-04-01 09:30", 20, glucose=20.0, hco3=20, bhb=5.0)
+    cdm.lab(2, "2744-1", 7.10, unit="[pH]", at="2024-04-01 09:30", visit=20)  # pH of arterial blood
+    panel(cdm, 2, "2024-04-01 21:30", 20, glucose=8.0, ph=7.36, hco3=22, bhb=0.3)
+    path = cdm.write(tmp_path / "extract", fmt="parquet")
+    full = load_definition("consensus-2024")
+    venous = parse_definition({**full.to_dict(), "name": "consensus-venous"},
+                              overrides={"timing.ph_specimens": ["venous"]})
+    together = find_episodes(path, [full, venous]).episodes
+    alone = pl.concat([find_episodes(path, [item]).episodes for item in (full, venous)])
+    assert together.sort("definition", "person_id").equals(alone.sort("definition", "person_id"))
+    found = {(row["definition"], row["person_id"]) for row in together.to_dicts()}
+    assert found == {("consensus-2024", 1), ("consensus-2024", 2), ("consensus-venous", 1)}
