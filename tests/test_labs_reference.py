@@ -175,3 +175,61 @@ def test_sql_matches_reference_on_the_synthetic_extract(tmp_path: Path) -> None:
     assert {"no_time", "duplicate"} <= set(got["reason"].drop_nulls())
     assert got.filter(pl.col("reason").is_null()).height > 0.9 * got.height
 
+
+
+def _compare_scoped(folder: Path, persons: list[int]) -> pl.DataFrame:
+    """A run limited to ``persons`` against the reference restricted to their rows."""
+    with open_extract(folder) as extract:
+        summary = prepare_lab_events(extract, persons=persons)
+        con = extract.con
+        got = con.sql(
+            "select checked.measurement_id, checked.analyte, checked.value, "
+            "coalesce(checked.reason, quarantine.reason) as reason from dka_measurement_checked as checked "
+            "left join dka_quarantine as quarantine on quarantine.source_table = 'measurement' "
+            "and quarantine.source_row_id = checked.measurement_id order by checked.measurement_id").pl()
+        quarantined = con.execute("select count(*) from dka_quarantine where source_table = 'measurement'"
+                                  ).fetchall()[0][0]
+    measurement = pl.read_parquet(folder / "measurement.parquet")
+    theirs = measurement.filter(pl.col("person_id").is_in(persons))
+    expected = reference_checked(folder).join(theirs.select("measurement_id"), on="measurement_id")
+    assert got["measurement_id"].to_list() == expected["measurement_id"].to_list()
+    assert got["reason"].to_list() == expected["reason"].to_list()
+    assert quarantined == expected["reason"].is_not_null().sum()
+    assert summary.persons == len(set(persons))
+    assert summary.rows_read == theirs.height and summary.reconciles
+    return got
+
+
+@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(rows=st.lists(row_strategy, min_size=1, max_size=25),
+       persons=st.lists(st.sampled_from((1, 2, 3, 99)), min_size=0, max_size=3))
+def test_run_limited_to_some_persons_matches_the_reference_on_their_rows(
+        tmp_path_factory: pytest.TempPathFactory, rows: list, persons: list[int]) -> None:
+    # prepare_lab_events(persons=...) (the features' reading): the same reasons and values as the
+    # full run for those persons' rows, nothing of anyone else, and their rows reconcile
+    cdm = MiniCdm()
+    cdm.person(1, birth="1980-05-01")
+    cdm.person(2, birth="2012-01-01", observation=("2012-01-01", "2025-12-31"))
+    cdm.person(3, birth="2015-06-20", observation=("2015-01-01", "2016-01-01"), birth_precision="month")
+    cdm.death(1, date="2024-03-03")
+    for person, code_index, unit_index, at, value, answer in rows:
+        code, units = _CODES[code_index]
+        cdm.lab(person, code, value, unit=units[unit_index % len(units)], at=at,
+                date=None if at else "2024-03-02", value_as=answer)
+    _compare_scoped(cdm.write(tmp_path_factory.mktemp("scoped") / "x", fmt="parquet"), persons)
+
+
+def test_run_limited_to_some_persons_gives_their_lab_events_of_the_full_run(tmp_path: Path) -> None:
+    synthetic = pytest.importorskip("synthetic")
+    summary = synthetic.generate_extract(persons=600, seed=11, out=tmp_path / "demo", progress=False)
+    folder = Path(summary.extract_dir)
+    persons = pl.read_parquet(folder / "person.parquet")["person_id"].head(150).to_list()
+    events = "select * from dka_lab_events order by measurement_id"
+    with open_extract(folder) as extract:
+        prepare_lab_events(extract)
+        full = extract.con.sql(events).pl().filter(pl.col("person_id").is_in(persons))
+    with open_extract(folder) as extract:
+        prepare_lab_events(extract, persons=pl.Series(persons))
+        limited = extract.con.sql(events).pl()
+    assert limited.height > 0 and limited.equals(full)
+    _compare_scoped(folder, persons)

@@ -570,10 +570,10 @@ def load_feature_inputs(
 ) -> FeatureInputs:
     """Pull the frames the feature builders need from an opened extract.
 
-    Runs :func:`cohort._labs.prepare_lab_events` first when ``dka_lab_events`` is not in the
-    session yet. Drug, visit and lab rows are read only for persons with an episode; persons,
-    deaths, observation periods and diabetes records for everyone (the person summary counts
-    every person).
+    Runs :func:`cohort._labs.prepare_lab_events` first, for the persons with an episode, when
+    ``dka_lab_events`` is not in the session yet. Drug, visit and lab rows are read only for
+    persons with an episode; persons, deaths, observation periods and diabetes records for
+    everyone (the person summary counts every person).
 
     Parameters
     ----------
@@ -610,7 +610,9 @@ def load_feature_inputs(
     if not _has_table(con, "dka_lab_events"):
         from cohort._labs import prepare_lab_events
 
-        prepare_lab_events(extract, as_of=as_of)  # the episodes run's as-of date, when known
+        # the episodes run's as-of date, when known; the persons with an episode only (the lab
+        # query below keeps no other), so the lab step reads their rows, not every person's
+        prepare_lab_events(extract, as_of=as_of, persons=checked.get_column("person_id"))
     for table in ("dka_concept_drug", "dka_concept_route", "dka_concept_visit", "dka_concept_condition"):
         if not _has_table(con, table):
             msg = (
