@@ -159,6 +159,60 @@ def test_andersen_gill_equals_statsmodels_phreg_with_entry_and_groups():
                           start_col="start", stop_col="stop")
     np.testing.assert_allclose(split["coef"], ag["coef"], rtol=1e-6)
     assert ag["ph_statistic"].is_not_null().all()
+    # The robust (sandwich) SE by person (Lin DY, Wei LJ. J Am Stat Assoc 1989;84:1074-1078),
+    # written out below with loops over the risk sets, at lifelines CoxTimeVaryingFitter's
+    # coefficients and model-based variance; and unchanged by the split (lifelines 0.30's
+    # CoxPHFitter(entry_col=..., robust=True) fails this: its score residuals treat every row as
+    # at risk from time 0; statsmodels 0.14's PHReg score residuals ignore `entry` too).
+    beta = ctv.params_.loc[["x", "w"]].to_numpy()
+    variance = ctv.variance_matrix_.to_numpy()  # rows named, columns numbered, in params_ order
+    assert list(ctv.params_.index) == ["x", "w"]
+    np.testing.assert_allclose(ag["se"], np.sqrt(np.diag(_lin_wei(cp, ["x", "w"], beta, variance))),
+                               rtol=1e-5)
+    np.testing.assert_allclose(split["se"], ag["se"], rtol=1e-6)
+
+
+def _lin_wei(cp: pd.DataFrame, names: list[str], beta: np.ndarray, variance: np.ndarray) -> np.ndarray:
+    """Robust variance V (sum over persons of U_c U_c') V, U_i the score residual of row i:
+    d_i (x_i - xbar(stop_i)) - sum over event times t in (start_i, stop_i] of
+    w_i (x_i - xbar(t)) dN(t) / S0(t); plain loops (Breslow form at tied times)."""
+    x = cp[names].to_numpy(float)
+    start, stop, event = cp.start.to_numpy(), cp.stop.to_numpy(), cp.event.to_numpy().astype(bool)
+    w = np.exp(x @ beta)
+    residual = np.zeros_like(x)
+    for t in np.unique(stop[event]):
+        at_risk = (start < t) & (t <= stop)
+        s0 = w[at_risk].sum()
+        xbar = (w[at_risk, None] * x[at_risk]).sum(axis=0) / s0
+        dead = event & (stop == t)
+        residual[dead] += x[dead] - xbar
+        residual[at_risk] -= w[at_risk, None] * (x[at_risk] - xbar) * dead.sum() / s0
+    summed = pd.DataFrame(residual).groupby(cp.person_id.to_numpy()).sum().to_numpy()
+    return variance @ (summed.T @ summed) @ variance
+
+
+def test_counting_process_fit_equals_lifelines_and_statsmodels_on_rossi(rossi):
+    """Rossi recidivism data (Rossi, Berk and Lenihan 1980, shipped with lifelines), entered as
+    (0, week] rows, then with each follow-up longer than 20 weeks split at week 20: the
+    coefficients and model-based SEs equal lifelines' CoxPHFitter (Efron), the robust SEs
+    statsmodels PHReg's with groups, before and after the split."""
+    d = rossi.assign(person_id=np.arange(len(rossi)), start=0.0)
+    long = d[d.week > 20]
+    split = pd.concat([d[d.week <= 20], long.assign(week=20.0, arrest=0), long.assign(start=20.0)],
+                      ignore_index=True)
+    ref = CoxPHFitter().fit(rossi[["week", "arrest", "fin", "age", "prio"]], "week", "arrest")
+    robust = PHReg(rossi.week, rossi[["fin", "age", "prio"]], status=rossi.arrest,
+                   ties="efron").fit(groups=np.arange(len(rossi)))
+    for frame in (d, split):
+        cluster = "person_id" if frame is split else None
+        fit = cox_model(frame, duration_col="week", event_col="arrest", entry_col="start",
+                        covariates=["fin", "age", "prio"], cluster_col=cluster)
+        np.testing.assert_allclose(fit["coef"], ref.params_.loc[["fin", "age", "prio"]], rtol=1e-7)
+        if cluster is None:
+            np.testing.assert_allclose(fit["se"], ref.standard_errors_.loc[["fin", "age", "prio"]], rtol=1e-7)
+        else:
+            assert fit["se_type"][0] == "robust_cluster"
+            np.testing.assert_allclose(fit["se"], robust.bse, rtol=1e-7)
 
 
 def test_text_covariate_uses_most_frequent_level_as_reference():

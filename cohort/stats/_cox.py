@@ -1,4 +1,8 @@
-"""Cox proportional-hazards models (lifelines, Efron ties) with a PH check beside every model.
+"""Cox proportional-hazards models (Efron ties) with a PH check beside every model.
+
+Rows with one time each are fitted by lifelines; (start, stop] rows (``entry_col``: the
+Andersen-Gill model, delayed entry) by :func:`cohort.stats._counting_cox.fit_counting_cox`,
+whose robust variance honours the entry times (lifelines' does not).
 
 Every fit reports hazard ratios with Wald intervals, the scaled Schoenfeld residual test of
 proportional hazards for each term (Grambsch and Therneau 1994; lifelines'
@@ -25,6 +29,7 @@ from lifelines.exceptions import ConvergenceError, ConvergenceWarning
 from scipy import stats as sps
 
 from cohort._errors import InputError
+from cohort.stats._counting_cox import fit_counting_cox
 from cohort.stats._common import (
     FrameLike,
     as_list,
@@ -71,7 +76,6 @@ def _fit(
     *,
     strata: list[str],
     robust: bool,
-    entry: bool,
     table: str,
     what: str,
 ) -> tuple[CoxPHFitter, list[str]]:
@@ -87,7 +91,6 @@ def _fit(
                 strata=strata or None,
                 cluster_col=_CLUSTER if robust else None,
                 robust=robust,
-                entry_col=_ENTRY if entry else None,
             )
         except (ConvergenceError, np.linalg.LinAlgError) as exc:
             raise InputError(
@@ -332,15 +335,39 @@ def cox_model(
         robust = n_clusters < len(frame)
         if not robust:
             fit_df = fit_df.drop(columns=[_CLUSTER])
-    cph, caught = _fit(
-        fit_df,
-        strata=strata_cols,
-        robust=robust,
-        entry=entry_col is not None,
-        table=table,
-        what=what,
-    )
-    coefs = cph.params_
+    terms = list(design.terms)
+    converged = True
+    if entry_col is not None:
+        # (start, stop] rows: the project's own fit (cohort.stats._counting_cox; lifelines'
+        # robust variance ignores the entry times there, and its fit loops in Python)
+        fitted = fit_counting_cox(
+            fit_df[terms].to_numpy(dtype=float),
+            fit_df[_ENTRY].to_numpy(),
+            fit_df[_DURATION].to_numpy(),
+            fit_df[_EVENT].to_numpy(),
+            strata=(fit_df[strata_cols].astype(str).agg("|".join, axis=1).to_numpy()
+                    if strata_cols else None),
+            cluster=fit_df[_CLUSTER].to_numpy() if robust else None,
+        )
+        caught: list[str] = []
+        converged = fitted.converged
+        coefs = pd.Series(fitted.params, index=terms)
+        model_variance = pd.DataFrame(fitted.variance, index=terms, columns=terms)
+        chosen = fitted.robust_variance if fitted.robust_variance is not None else fitted.variance
+        se = pd.Series(np.sqrt(np.clip(np.diag(chosen), 0.0, None)), index=terms)
+    else:
+        cph, caught = _fit(
+            fit_df,
+            strata=strata_cols,
+            robust=robust,
+            table=table,
+            what=what,
+        )
+        coefs = cph.params_[terms]
+        # lifelines keeps the model-based variance in variance_matrix_ even for a robust fit
+        # (robust SEs go to standard_errors_ only); the Grambsch-Therneau scaling uses it.
+        model_variance = cph.variance_matrix_.loc[terms, terms]
+        se = cph.summary["se(coef)"][terms]
     huge = coefs[np.abs(coefs) > MONOTONE_LIKELIHOOD_COEF]
     if len(huge) or any("separation" in msg for msg in caught):
         term = huge.index[0] if len(huge) else "a covariate"
@@ -350,14 +377,18 @@ def cox_model(
             f"{float(huge.iloc[0]) if len(huge) else float('inf'):.1f}); no finite hazard "
             "ratio exists. Drop or pool that covariate, or use a penalised model."
         )
-    summary = cph.summary
+    if not converged:
+        raise InputError(
+            f"{what} on table `{table}` did not converge in 50 Newton-Raphson steps. This "
+            "usually means a covariate separates events from non-events perfectly or two "
+            "covariates carry the same information; drop or pool them."
+        )
     z = z_value(alpha)
-    se = summary["se(coef)"]
+    wald = coefs / se
+    p_value = pd.Series(sps.chi2.sf(wald.to_numpy() ** 2, 1), index=terms)
     ph_stat: dict[str, float] = {}
     ph_p: dict[str, float] = {}
     if ph_test:
-        # lifelines keeps the model-based variance in variance_matrix_ even for a robust fit
-        # (robust SEs go to standard_errors_ only); the Grambsch-Therneau scaling uses it.
         strata_labels = (
             fit_df[strata_cols].astype(str).agg("|".join, axis=1).to_numpy()
             if strata_cols
@@ -367,8 +398,8 @@ def cox_model(
             fit_df[design.terms].to_numpy(),
             fit_df[_DURATION].to_numpy(),
             fit_df[_EVENT].to_numpy(),
-            cph.params_[design.terms].to_numpy(),
-            cph.variance_matrix_.loc[design.terms, design.terms].to_numpy(),
+            coefs.to_numpy(),
+            model_variance.to_numpy(),
             entry=fit_df[_ENTRY].to_numpy() if entry_col is not None else None,
             strata=strata_labels,
             time_transform=ph_time_transform,
@@ -394,8 +425,8 @@ def cox_model(
                 "estimate": float(np.exp(coef)),
                 "lower": float(np.exp(coef - z * s)),
                 "upper": float(np.exp(coef + z * s)),
-                "z": float(summary.loc[term, "z"]),
-                "p": float(summary.loc[term, "p"]),
+                "z": float(wald[term]),
+                "p": float(p_value[term]),
                 "se_type": "robust_cluster" if robust else "model",
                 "n": len(fit_df),
                 "events": events,
