@@ -163,7 +163,9 @@ def test_andersen_gill_equals_statsmodels_phreg_with_entry_and_groups():
     # written out below with loops over the risk sets, at lifelines CoxTimeVaryingFitter's
     # coefficients and model-based variance; and unchanged by the split (lifelines 0.30's
     # CoxPHFitter(entry_col=..., robust=True) fails this: its score residuals treat every row as
-    # at risk from time 0; statsmodels 0.14's PHReg score residuals ignore `entry` too).
+    # at risk from time 0). statsmodels 0.15's PHReg is no reference here: its robust SE is NaN
+    # when an interval holds no event time, and its score residuals credit such an interval
+    # with the event time before it (they do not sum to the score; checked on these data).
     beta = ctv.params_.loc[["x", "w"]].to_numpy()
     variance = ctv.variance_matrix_.to_numpy()  # rows named, columns numbered, in params_ order
     assert list(ctv.params_.index) == ["x", "w"]
@@ -270,3 +272,21 @@ def test_few_events_per_parameter_carry_a_warning(rossi):
 def test_missing_cluster_column_is_named(rossi):
     with pytest.raises(InputError, match="`person_id`"):
         cox_model(rossi, duration_col="week", event_col="arrest", covariates=["fin"])
+
+
+def test_counting_process_score_residuals_sum_to_the_score():
+    """Score residuals add up to the score vector (Therneau TM, Grambsch PM. Modeling Survival
+    Data, 2000, section 4.6), which is zero at the maximum: on untied (start, stop] data with
+    delayed entries and intervals holding no event time, at the fitted coefficients."""
+    from cohort.stats._counting_cox import _score_residuals, _stratum, fit_counting_cox
+
+    rng = np.random.default_rng(5)
+    n = 400
+    start = rng.uniform(0, 50, n)
+    stop = start + rng.exponential(30, n)
+    event = rng.random(n) < 0.6
+    x = rng.normal(size=(n, 2))
+    fit = fit_counting_cox(x, start, stop, event)
+    assert fit.converged
+    residuals = _score_residuals([_stratum(x - x.mean(axis=0), start, stop, event)], fit.params)[0]
+    np.testing.assert_allclose(residuals.sum(axis=0), 0.0, atol=1e-8)
