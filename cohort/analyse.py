@@ -85,6 +85,34 @@ def _varying(frame: pl.DataFrame, wanted: tuple[str, ...], summary: AnalysisSumm
     return kept
 
 
+def _without_eventless_levels(frame: pl.DataFrame, covariates: list[str], event: str,
+                              summary: AnalysisSummary, models: str) -> pl.DataFrame:
+    """``frame`` less the rows at a level of a text covariate holding no event.
+
+    A level without events has no finite hazard ratio (the partial likelihood keeps rising as
+    its coefficient falls; monotone likelihood, the survival analogue of separation), so the
+    model would be refused whole. Its rows are left out of the model instead, and listed with
+    the skipped analyses (common practice: report, rather than estimate, an empty level).
+    """
+    kept = frame
+    notes = []
+    for name in covariates:
+        if name not in kept.columns or kept[name].dtype not in (pl.String, pl.Categorical):
+            continue
+        counts = kept.group_by(name).agg(pl.len().alias("rows"), pl.col(event).cast(pl.Int64).sum().alias("events"))
+        empty = counts.filter((pl.col("events") == 0) & pl.col(name).is_not_null()).sort(name)
+        for level, rows in zip(empty[name].to_list(), empty["rows"].to_list(), strict=True):
+            notes.append(f"{name}={level} ({rows} rows)")
+        if empty.height:
+            kept = kept.filter(~pl.col(name).is_in(empty[name].implode()) | pl.col(name).is_null())
+    if notes:
+        summary.skipped[f"{models}: levels left out"] = (
+            f"{', '.join(notes)} hold no event, so no hazard ratio exists for them; their rows "
+            "are left out of the model"
+        )
+    return kept
+
+
 def _population_person_time(person_time: pl.DataFrame, definition: str) -> pl.DataFrame:
     """Person-time of people with diabetes (type 1 or 2) in the definition's age range.
 
@@ -280,6 +308,7 @@ def run_analyses(
 
     def cox() -> dict[str, pl.DataFrame]:
         data = resolution.filter(pl.all_horizontal([pl.col(name).is_not_null() for name in covariates]))
+        data = _without_eventless_levels(data, covariates, "is_resolved", summary, "resolution Cox model")
         return {"resolution_cox": stats.cox_model(data, covariates=covariates, reference={"severity": "mild"})}
 
     with_death = with_death_in_follow_up(episodes, persons)

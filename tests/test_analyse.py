@@ -75,3 +75,27 @@ def test_unknown_definition_is_named(results: Path, tmp_path: Path) -> None:
 def test_missing_features_folder_says_what_is_expected(tmp_path: Path) -> None:
     with pytest.raises(InputError, match="no episode_features.parquet under"):
         run_analyses(tmp_path, tmp_path / "out")
+
+
+def test_covariate_level_without_events_is_left_out_of_the_cox_model_and_said() -> None:
+    # A level with no event has no finite hazard ratio (monotone likelihood; Heinze G, Schemper
+    # M. A solution to the problem of monotone likelihood in Cox regression. Biometrics
+    # 2001;57:114-119): its rows are left out and the omission listed, rather than the model
+    # refused (or, as before, a hazard ratio near 0 published). Invented rows.
+    from cohort.analyse import AnalysisSummary, _without_eventless_levels
+
+    frame = pl.DataFrame({
+        "diabetes_type": ["type1"] * 4 + ["type2"] * 3 + ["other"] * 2 + [None],
+        "sex": ["F", "M"] * 5,
+        "is_resolved": [True, False, True, True, True, False, True, False, False, True],
+    })
+    summary = AnalysisSummary(out=Path("."), definition="x")
+    kept = _without_eventless_levels(frame, ["diabetes_type", "sex"], "is_resolved", summary, "models")
+    assert kept.height == 8 and "other" not in kept["diabetes_type"].to_list()
+    assert kept["diabetes_type"].null_count() == 1  # missing values are not a level
+    assert summary.skipped == {"models: levels left out": (
+        "diabetes_type=other (2 rows) hold no event, so no hazard ratio exists for them; their "
+        "rows are left out of the model")}
+    untouched = AnalysisSummary(out=Path("."), definition="x")
+    assert _without_eventless_levels(kept, ["diabetes_type"], "is_resolved", untouched, "models").equals(kept)
+    assert untouched.skipped == {}

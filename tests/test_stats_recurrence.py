@@ -166,8 +166,10 @@ def test_gap_time_model_equals_stratified_cox_on_gap_times():
                            "stratum": np.minimum(cp.episode_number, 3), "pid": cp.person_id})
     ref = CoxPHFitter().fit(ref_df, "gap", "event", strata=["stratum"], cluster_col="pid",
                             robust=True)
-    assert fit["coef"][0] == pytest.approx(float(ref.params_["x"]), rel=1e-8)
-    assert fit["se"][0] == pytest.approx(float(ref.standard_errors_["x"]), rel=1e-8)
+    # robust fits are the project's own (cohort.stats._counting_cox), which iterates to a
+    # tighter tolerance than lifelines: equal to 1e-5, not to the last digits
+    assert fit["coef"][0] == pytest.approx(float(ref.params_["x"]), rel=1e-5)
+    assert fit["se"][0] == pytest.approx(float(ref.standard_errors_["x"]), rel=1e-5)
     assert fit["se_type"][0] == "robust_cluster"
     # A table already in gap time (start_col=None) gives the same fit.
     gap_only = cp.assign(stop=cp.stop - cp.start)
