@@ -300,11 +300,18 @@ def run_analyses(
             summary.skipped["cause_specific_cox:" + ",".join(too_few)] = (
                 f"fewer than {MIN_CAUSE_EVENTS} events of cause(s) {', '.join(too_few)}; no model fitted for them"
             )
-        return {
-            "resolution_cause_specific_cox": stats.cause_specific_cox(
-                data, covariates=covariates, causes=causes, reference={"severity": "mild"}
-            )
-        }
+        if not causes:  # as before: cause_specific_cox says what is missing
+            return {"resolution_cause_specific_cox": stats.cause_specific_cox(
+                data, covariates=covariates, causes=causes, reference={"severity": "mild"})}
+        fits = []
+        for cause in causes:
+            # each cause its own model: leave out the levels with no event of this cause
+            flagged = data.with_columns((pl.col("event_type") == cause).alias("_is_cause"))
+            kept = _without_eventless_levels(flagged, covariates, "_is_cause", summary,
+                                             f"cause-specific Cox model ({cause})").drop("_is_cause")
+            fits.append(stats.cause_specific_cox(
+                kept, covariates=covariates, causes=[cause], reference={"severity": "mild"}))
+        return {"resolution_cause_specific_cox": pl.concat(fits, how="diagonal_relaxed")}
 
     def cox() -> dict[str, pl.DataFrame]:
         data = resolution.filter(pl.all_horizontal([pl.col(name).is_not_null() for name in covariates]))

@@ -137,7 +137,8 @@ def _cmd_analyse(args: argparse.Namespace) -> int:
     summary = run_analyses(Path(args.features), Path(args.out), definition=args.definition)
     print(f"{len(summary.written)} result tables for {summary.definition} written to {summary.out.resolve()}")
     for name, reason in summary.skipped.items():
-        print(f"  not run: {name}: {reason}")
+        # "...: covariates left out" and "...: levels left out" are notes on a model that ran
+        print(f"  {'note' if name.endswith('left out') else 'not run'}: {name}: {reason}")
     return 0
 
 

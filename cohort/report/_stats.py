@@ -352,7 +352,9 @@ def _skipped_analyses(build: Any, results_dir: Path) -> None:
         return
     for name, reason in sorted(skipped.items()):
         build.skip(f"Analysis {name.replace('_', ' ').replace(':', ': ').replace(',', ', ')}",
-                   "not run by the statistics stage: " + str(mask_small_numbers(str(reason), threshold=build.threshold)))
+                   ("left out by the statistics stage: " if name.endswith("left out")
+                    else "not run by the statistics stage: ")
+                   + str(mask_small_numbers(str(reason), threshold=build.threshold)))
 
 
 def resolution_blocks(build: Any, results_dir: Path) -> list[Markup]:
