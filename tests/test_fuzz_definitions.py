@@ -62,7 +62,7 @@ INJECTIONS = [
 # NEL (U+0085) is a line break to YAML 1.1 (spec 5.4); PyYAML's safe_dump(allow_unicode=True)
 # writes it unescaped and reads it back as a space (checked with PyYAML 6), so drawn text leaves
 # it out: the round trip, not the loader, would change it.
-_DRAWN = st.characters(exclude_characters="\x85")
+_DRAWN = st.characters(exclude_categories=("Cs",), exclude_characters="\x85")  # st.text leaves out surrogates too
 TEXT = st.one_of(st.sampled_from(INJECTIONS), st.text(_DRAWN, min_size=0, max_size=30))
 NAMEISH = st.one_of(st.sampled_from(INJECTIONS), st.text(_DRAWN, min_size=1, max_size=20))
 
