@@ -118,8 +118,9 @@ _PERSONS_SCOPE = Fragment(
     "measurement.person_id in (select dka_lab_persons.person_id from dka_lab_persons)")
 
 
-def _register_persons(con: Any, persons: Iterable[int] | pl.Series) -> None:
-    """Keep the distinct person ids of ``persons`` in the temporary table ``dka_lab_persons``."""
+def _register_persons(con: Any, persons: Iterable[int] | pl.Series) -> int:
+    """Keep the distinct person ids of ``persons`` in the temporary table ``dka_lab_persons``;
+    return how many there are."""
     series = persons if isinstance(persons, pl.Series) else pl.Series(list(persons))
     if series.dtype == pl.Null or series.is_empty():
         series = pl.Series([], dtype=pl.Int64)
@@ -134,6 +135,7 @@ def _register_persons(con: Any, persons: Iterable[int] | pl.Series) -> None:
                     "select person_id from dka_lab_persons_given")
     finally:
         con.unregister("dka_lab_persons_given")
+    return frame.height
 
 
 #: Persons with a usable result, and usable rows: the time points' counts less the repeated copies
@@ -448,9 +450,10 @@ def prepare_lab_events(
     as_of = as_of if as_of is not None else default_as_of()
     slots = lab_slots(as_of)
     scoped = persons is not None
+    persons_kept = None
     if scoped:
         slots["row_scope"] = _PERSONS_SCOPE
-        _register_persons(con, persons)  # type: ignore[arg-type]
+        persons_kept = _register_persons(con, persons)  # type: ignore[arg-type]
     run_scope = slots["row_scope"]
     # the run's slots, for checked_in_scope (a later reader re-renders sql/20 with the same as-of
     # and within the same rows)
@@ -511,7 +514,7 @@ def prepare_lab_events(
         unresolved_codes=unresolved,
         seconds=time.perf_counter() - started,
         as_of=as_of,
-        persons=_scalar(con, "select count(*) from dka_lab_persons") if scoped else None,
+        persons=persons_kept,
     )
     if on_step is not None:
         on_step("accounting", time.perf_counter() - step_started)

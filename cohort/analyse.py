@@ -29,7 +29,7 @@ import polars as pl
 
 from cohort._errors import CohortError, InputError
 
-__all__ = ["AnalysisSummary", "run_analyses", "with_death_in_follow_up"]
+__all__ = ["AnalysisSummary", "NOTE_SUFFIX", "is_note", "run_analyses", "with_death_in_follow_up"]
 
 #: Covariates of the resolution and recurrence models (episode features contract names).
 RESOLUTION_COVARIATES = ("severity", "age_at_onset", "sex", "diabetes_type", "is_sglt2i_at_onset", "hba1c_mmol_mol")
@@ -79,10 +79,26 @@ def _varying(frame: pl.DataFrame, wanted: tuple[str, ...], summary: AnalysisSumm
             continue
         (kept if frame[name].drop_nulls().n_unique() > 1 else constant).append(name)
     if constant:
-        summary.skipped[f"{models}: covariates left out"] = (
+        summary.skipped[f"{models}: covariates {NOTE_SUFFIX}"] = (
             f"{', '.join(constant)} take(s) a single value in these episodes, so no effect can be estimated"
         )
     return kept
+
+
+#: The end of the name of an entry of ``AnalysisSummary.skipped`` that is a note on a model
+#: that ran (covariates or levels left out), not an analysis that did not run.
+NOTE_SUFFIX = "left out"
+
+
+def is_note(name: str) -> bool:
+    """True for an ``AnalysisSummary.skipped`` entry that notes what a model left out.
+
+    Examples
+    --------
+    >>> is_note("resolution models: covariates left out"), is_note("cause_specific_cox")
+    (True, False)
+    """
+    return name.endswith(NOTE_SUFFIX)
 
 
 def _without_eventless_levels(frame: pl.DataFrame, covariates: list[str], event: str,
@@ -106,7 +122,7 @@ def _without_eventless_levels(frame: pl.DataFrame, covariates: list[str], event:
         if empty.height:
             kept = kept.filter(~pl.col(name).is_in(empty[name].implode()) | pl.col(name).is_null())
     if notes:
-        summary.skipped[f"{models}: levels left out"] = (
+        summary.skipped[f"{models}: levels {NOTE_SUFFIX}"] = (
             f"{', '.join(notes)} hold no event, so no hazard ratio exists for them; their rows "
             "are left out of the model"
         )

@@ -132,13 +132,12 @@ def _cmd_features(args: argparse.Namespace) -> int:
 
 
 def _cmd_analyse(args: argparse.Namespace) -> int:
-    from cohort.analyse import run_analyses
+    from cohort.analyse import is_note, run_analyses
 
     summary = run_analyses(Path(args.features), Path(args.out), definition=args.definition)
     print(f"{len(summary.written)} result tables for {summary.definition} written to {summary.out.resolve()}")
     for name, reason in summary.skipped.items():
-        # "...: covariates left out" and "...: levels left out" are notes on a model that ran
-        print(f"  {'note' if name.endswith('left out') else 'not run'}: {name}: {reason}")
+        print(f"  {'note' if is_note(name) else 'not run'}: {name}: {reason}")
     return 0
 
 

@@ -80,7 +80,7 @@ def test_missing_features_folder_says_what_is_expected(tmp_path: Path) -> None:
 def test_covariate_level_without_events_is_left_out_of_the_cox_model_and_said() -> None:
     # A level with no event has no finite hazard ratio (monotone likelihood; Heinze G, Schemper
     # M. A solution to the problem of monotone likelihood in Cox regression. Biometrics
-    # 2001;57:114-119): its rows are left out and the omission listed, rather than the model
+    # 2001;57:114-119; citation from memory): its rows are left out and the omission listed, rather than the model
     # refused (or, as before, a hazard ratio near 0 published). Invented rows.
     from cohort.analyse import AnalysisSummary, _without_eventless_levels
 

@@ -279,7 +279,8 @@ def test_missing_cluster_column_is_named(rossi):
 
 def test_counting_process_score_residuals_sum_to_the_score():
     """Score residuals add up to the score vector (Therneau TM, Grambsch PM. Modeling Survival
-    Data, 2000, section 4.6), which is zero at the maximum: on untied (start, stop] data with
+    Data: Extending the Cox Model, Springer 2000, chapter on residuals; section from memory),
+    which is zero at the maximum: on untied (start, stop] data with
     delayed entries and intervals holding no event time, at the fitted coefficients."""
     from cohort.stats._counting_cox import _score_residuals, _stratum, fit_counting_cox
 

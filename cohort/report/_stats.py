@@ -342,6 +342,8 @@ def _prediction_blocks(build: Any, results_dir: Path) -> list[Markup]:
 # ----------------------------------------------------------------------------- parts
 def _skipped_analyses(build: Any, results_dir: Path) -> None:
     """Name the analyses the statistics stage could not run (its ``analyses.json``), small numbers masked."""
+    from cohort.analyse import is_note
+
     path = results_dir / "stats" / "analyses.json"
     if not path.is_file():
         return
@@ -352,7 +354,7 @@ def _skipped_analyses(build: Any, results_dir: Path) -> None:
         return
     for name, reason in sorted(skipped.items()):
         build.skip(f"Analysis {name.replace('_', ' ').replace(':', ': ').replace(',', ', ')}",
-                   ("left out by the statistics stage: " if name.endswith("left out")
+                   ("left out by the statistics stage: " if is_note(name)
                     else "not run by the statistics stage: ")
                    + str(mask_small_numbers(str(reason), threshold=build.threshold)))
 

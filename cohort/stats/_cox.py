@@ -77,10 +77,10 @@ def _fit(
     fit_df: pd.DataFrame,
     *,
     strata: list[str],
-    robust: bool,
     table: str,
     what: str,
 ) -> tuple[CoxPHFitter, list[str]]:
+    """lifelines' Cox fit with model-based variance (robust fits go to fit_counting_cox)."""
     cph = CoxPHFitter()
     caught: list[str] = []
     with warnings.catch_warnings(record=True) as records:
@@ -91,8 +91,6 @@ def _fit(
                 duration_col=_DURATION,
                 event_col=_EVENT,
                 strata=strata or None,
-                cluster_col=_CLUSTER if robust else None,
-                robust=robust,
             )
         except (ConvergenceError, np.linalg.LinAlgError) as exc:
             raise InputError(
@@ -338,7 +336,10 @@ def cox_model(
         if not robust:
             fit_df = fit_df.drop(columns=[_CLUSTER])
     terms = list(design.terms)
-    converged = True
+    strata_labels = (
+        fit_df[strata_cols].astype(str).agg("|".join, axis=1).to_numpy() if strata_cols else None
+    )
+    converged, steps = True, 0
     if entry_col is not None or robust:
         # (start, stop] rows, or a robust variance: the project's own fit
         # (cohort.stats._counting_cox): lifelines' robust variance ignores entry times, and its
@@ -349,24 +350,17 @@ def cox_model(
             fit_df[_ENTRY].to_numpy() if entry_col is not None else np.full(len(fit_df), -np.inf),
             fit_df[_DURATION].to_numpy(),
             fit_df[_EVENT].to_numpy(),
-            strata=(fit_df[strata_cols].astype(str).agg("|".join, axis=1).to_numpy()
-                    if strata_cols else None),
+            strata=strata_labels,
             cluster=fit_df[_CLUSTER].to_numpy() if robust else None,
         )
         caught: list[str] = []
-        converged = fitted.converged
+        converged, steps = fitted.converged, fitted.iterations
         coefs = pd.Series(fitted.params, index=terms)
         model_variance = pd.DataFrame(fitted.variance, index=terms, columns=terms)
         chosen = fitted.robust_variance if fitted.robust_variance is not None else fitted.variance
         se = pd.Series(np.sqrt(np.clip(np.diag(chosen), 0.0, None)), index=terms)
     else:
-        cph, caught = _fit(
-            fit_df,
-            strata=strata_cols,
-            robust=robust,
-            table=table,
-            what=what,
-        )
+        cph, caught = _fit(fit_df, strata=strata_cols, table=table, what=what)
         coefs = cph.params_[terms]
         # lifelines keeps the model-based variance in variance_matrix_ even for a robust fit
         # (robust SEs go to standard_errors_ only); the Grambsch-Therneau scaling uses it.
@@ -383,7 +377,7 @@ def cox_model(
         )
     if not converged:
         raise InputError(
-            f"{what} on table `{table}` did not converge in 50 Newton-Raphson steps. This "
+            f"{what} on table `{table}` did not converge in {steps} Newton-Raphson steps. This "
             "usually means a covariate separates events from non-events perfectly or two "
             "covariates carry the same information; drop or pool them."
         )
@@ -393,11 +387,6 @@ def cox_model(
     ph_stat: dict[str, float] = {}
     ph_p: dict[str, float] = {}
     if ph_test:
-        strata_labels = (
-            fit_df[strata_cols].astype(str).agg("|".join, axis=1).to_numpy()
-            if strata_cols
-            else None
-        )
         statistic, p_values = schoenfeld_ph_test(
             fit_df[design.terms].to_numpy(),
             fit_df[_DURATION].to_numpy(),
