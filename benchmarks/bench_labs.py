@@ -12,6 +12,10 @@ steadier figure on a shared, loaded machine):
 - with ``--downstream``, the same child then reads ``dka_lab_events`` the way the episodes step
   does (the row and person counts of ``cohort.episodes``, recipe 30, and recipe 31 for one
   definition), so the choice of view or table for ``dka_lab_events`` is measured where it costs;
+- with ``--floors``, the same child then times the floors of this design: one reading of the
+  checked rows (``sql/20`` over every row, counted by reason) and that reading gathered by time
+  point with counts of its rows and excluded rows only (the grouping ``sql/21`` does, without its value aggregates), each
+  stored as a table;
 - with ``--baseline REF``, the lab step is also run with its files (``cohort/_labs.py``,
   ``cohort/_codelists.py``, ``sql/1*``, ``sql/2*``) as committed at git revision REF (unpacked
   with ``git archive`` into a temporary copy of the package; the checkout is not touched), side by
@@ -25,7 +29,7 @@ on 2 cores, under 4 GB peak, at 1,000,000 persons.
 Usage::
 
     python benchmarks/bench_labs.py --extract DIR [--memory-limit 3GB] [--threads 2]
-        [--downstream] [--baseline HEAD] [--repeat 1]
+        [--downstream] [--floors] [--baseline HEAD] [--repeat 1]
 """
 
 from __future__ import annotations
@@ -122,6 +126,24 @@ with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}) as 
         build_lab_state(con, [load_definition("consensus-2024")])
         down["31_lab_state.sql"] = time.perf_counter() - started
         result["downstream"] = down
+    if {floors!r}:
+        # the floors of this design: one reading of the checked rows (sql/20, every row, nothing
+        # written), and the same reading gathered by time point with one count (the grouping
+        # sql/21 does, with only its counts of rows and of excluded rows, so every check is still
+        # made, not its 25 value aggregates); each stored as a table, as sql/21 is,
+        # so that DuckDB cannot drop the work (it drops aggregates nobody reads)
+        floors = {{}}
+        started = time.perf_counter()
+        con.execute("create or replace temp table bench_floor as select reason, count(*) as n "
+                    "from dka_measurement_checked group by reason")
+        floors["one checked reading"] = time.perf_counter() - started
+        started = time.perf_counter()
+        con.execute("create or replace temp table bench_floor as select person_id, event_datetime, "
+                    "count(*) as n, count(reason) as excluded from dka_measurement_checked where person_id is not null "
+                    "and event_datetime is not null group by person_id, event_datetime")
+        floors["reading + time points (two counts)"] = time.perf_counter() - started
+        con.execute("drop table bench_floor")
+        result["floors"] = floors
 print(json.dumps(result, default=str))
 """
 
@@ -182,7 +204,8 @@ def _runs(runs: list[tuple[dict, float]], digits: int) -> str:
 
 def _labs(root: Path, args: argparse.Namespace, *, downstream: bool, check: bool) -> tuple[dict, float]:
     return _run(_LABS.format(root=str(root), extract=str(args.extract), threads=args.threads,
-                             memory=args.memory_limit, downstream=downstream, check=check))
+                             memory=args.memory_limit, downstream=downstream, check=check,
+                             floors=args.floors))
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -192,6 +215,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--memory-limit", default="3GB")
     parser.add_argument("--downstream", action="store_true",
                         help="also time the episodes step's reads of dka_lab_events (recipes 30, 31)")
+    parser.add_argument("--floors", action="store_true",
+                        help="also time one reading of the checked rows, and that reading grouped "
+                             "by time point with two counts (the floors of this design)")
     parser.add_argument("--baseline", metavar="REV", help="also run the lab step of git revision REV")
     parser.add_argument("--repeat", type=int, default=1, help="runs of each variant (best and all shown)")
     args = parser.parse_args(argv)
@@ -225,7 +251,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     names = [name for name, _ in variants]
     best = {name: min(results[name], key=lambda item: item[0]["seconds"]) for name in names}
     steps = list(dict.fromkeys(step for name in names for step in best[name][0]["steps"]))
-    width = max(len(step) for step in [*steps, "downstream total"]) + 2
+    floor_labels = [f"floor: {step}" for step in best[names[-1]][0].get("floors", {})]
+    width = max(len(step) for step in [*steps, *floor_labels, "downstream total"]) + 2
     print("\n" + "step".ljust(width) + "".join(f"{name:>22}" for name in names))
     for step in steps:
         cells = [best[name][0]["steps"].get(step) for name in names]
@@ -250,6 +277,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         totals = {name: best[name][0]["seconds"] + sum(best[name][0]["downstream"].values()) for name in names}
         print("labs + 30 + 31".ljust(width) + "".join(f"{totals[name]:>20.2f} s" for name in names))
         print("  ratio to bare scan".ljust(width) + "".join(f"{totals[name] / scan:>21.1f}x" for name in names))
+    if args.floors:
+        for step in best[names[-1]][0]["floors"]:
+            print(f"floor: {step}".ljust(width) + "".join(
+                f"{best[name][0]['floors'][step]:>20.2f} s" for name in names))
+            print("  ratio to bare scan".ljust(width) + "".join(
+                f"{best[name][0]['floors'][step] / scan:>21.1f}x" for name in names))
     last = best[names[-1]][0]
     print(f"\nrows read {last['rows_read']:,} = used {last['rows_used']:,} + quarantined "
           f"{last['rows_quarantined']:,} + other analytes {last['rows_other']:,}")
