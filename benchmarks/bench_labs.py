@@ -14,8 +14,8 @@ steadier figure on a shared, loaded machine):
   definition), so the choice of view or table for ``dka_lab_events`` is measured where it costs;
 - with ``--floors``, the same child then times the floors of this design: one reading of the
   checked rows (``sql/20`` over every row, counted by reason) and that reading gathered by time
-  point with counts of its rows and excluded rows only (the grouping ``sql/21`` does, without its value aggregates), each
-  stored as a table;
+  point with counts of its rows and excluded rows only (the grouping ``sql/21`` does, without its
+  value aggregates), each stored as a table;
 - with ``--baseline REF``, the lab step is also run with its files (``cohort/_labs.py``,
   ``cohort/_codelists.py``, ``sql/1*``, ``sql/2*``) as committed at git revision REF (unpacked
   with ``git archive`` into a temporary copy of the package; the checkout is not touched), side by
@@ -117,7 +117,10 @@ with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}) as 
         from cohort.episodes import build_lab_state
         down = {{}}
         started = time.perf_counter()
-        con.execute("select count(distinct person_id), count(*) from dka_lab_events").fetchall()
+        # the counts cohort.episodes takes (from the time points; older revisions read the rows)
+        counts_sql = getattr(labs, "LAB_COUNTS_SQL",
+                             "select count(distinct person_id), count(*) from dka_lab_events")
+        con.execute(counts_sql).fetchall()
         down["event_counts"] = time.perf_counter() - started
         started = time.perf_counter()
         run_recipe(con, "30_person_diabetes.sql", "dka_person_diabetes", {{}})
