@@ -157,7 +157,17 @@ def test_resolution_planted_log_hazard_ratios_inside_95_intervals_of_seed_averag
 def _truth_counting_process(folder: Path) -> pl.DataFrame:
     """Person-time at risk of DKA as the generator defines it: from observation start, and
     from 14 days after each discharge, to the next arrival (event) or to 3 days before the end
-    of observation; people who die in an episode leave at that arrival."""
+    of observation; people who die in an episode leave at that arrival.
+
+    This mirrors ``synthetic/_people.py`` ``make_episodes``: the first window opens at
+    ``obs_start`` (line 513), the next at ``discharge + refractory_days_after_discharge``
+    (line 535), a death in hospital ends the person's risk (line 537), and an arrival counts
+    only before ``obs_end - 3 days`` with ``obs_end`` the last minute of the last observed day
+    (lines 514 and 525), so the censored tail closes at midnight starting the third day before
+    the end date, minus one minute. ``observation_end_date`` can move later only to the day
+    after a last discharge (``synthetic/_chunk.py`` lines 127-128), and the tail that would use
+    it opens 14 days after that discharge, so it stays empty either way.
+    ``tests/test_synthetic_at_risk.py`` checks these windows against the generator's own."""
     persons = pl.read_parquet(folder / "truth" / "persons.parquet").filter(
         pl.col("diabetes_type") != "none")
     episodes = (pl.read_parquet(folder / "truth" / "episodes.parquet")
@@ -168,7 +178,7 @@ def _truth_counting_process(folder: Path) -> pl.DataFrame:
     bounds = persons.select(
         "person_id",
         origin=pl.col("observation_start_date").cast(pl.Datetime("us")),
-        end=pl.col("observation_end_date").cast(pl.Datetime("us")) - pl.duration(days=2),
+        end=pl.col("observation_end_date").cast(pl.Datetime("us")) - pl.duration(days=2, minutes=1),
     )
     refractory = pl.duration(days=14)
     opened = episodes.with_columns(
