@@ -486,8 +486,25 @@ def _rebound_resolution(c: dict[str, np.ndarray]) -> np.ndarray:
     return out
 
 
-def make_episodes(rng: np.random.Generator, pe: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """DKA episodes of a chunk from the hazard model; recurrences from the same model."""
+def make_episodes(rng: np.random.Generator, pe: dict[str, np.ndarray]) -> dict:
+    """DKA episodes of a chunk from the hazard model; recurrences from the same model.
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+        The chunk's generator.
+    pe : dict of numpy.ndarray
+        The chunk's persons (:func:`make_persons`).
+
+    Returns
+    -------
+    dict
+        The episodes' arrays (empty when no one has an episode) and ``death_ep`` (per person).
+        ``at_risk`` holds the windows the waiting times were drawn in, one row per person and
+        round: ``person`` (local index), ``prior`` (the round, i.e. earlier episodes),
+        ``start`` and ``stop`` (minutes) and ``event`` (the window ends in an arrival). Nothing
+        writes them; tests compare them with the at-risk time rebuilt from the truth tables.
+    """
     n = pe["group"].size
     hz = P.DKA_HAZARD
     base = np.where(pe["group"] == T1, hz["base_per_person_year"]["type1"],
@@ -499,12 +516,16 @@ def make_episodes(rng: np.random.Generator, pe: dict[str, np.ndarray]) -> dict[s
     active = base > 0
     death_ep = np.full(n, np.nan)
     rounds = []
+    windows = []
     b_prior = hz["log_hr"]["per_prior_episode_capped_3"]
     for r in range(MAX_ROUNDS):  # until no one is at risk (a person is never cut off early)
         lam = base * np.exp(lp + b_prior * min(r, 3)) / YEAR
         wait = rng.exponential(size=n) / np.where(lam > 0, lam, 1.0)
         arr = np.floor(t_cur + wait)
         ok = active & (arr < obs_end - 3 * MIN_D)
+        at = np.nonzero(active)[0]
+        windows.append((at, np.full(at.size, r), t_cur[at].copy(),
+                        np.where(ok[at], arr[at], obs_end[at] - 3 * MIN_D), ok[at]))
         idx = np.nonzero(ok)[0]
         active = ok
         if idx.size == 0:
@@ -521,6 +542,8 @@ def make_episodes(rng: np.random.Generator, pe: dict[str, np.ndarray]) -> dict[s
     order = np.lexsort((ep["arrival"], ep["person"]))
     ep = {key: v[order] for key, v in ep.items()}
     ep["death_ep"] = death_ep
+    ep["at_risk"] = {key: np.concatenate([w[i] for w in windows])
+                     for i, key in enumerate(("person", "prior", "start", "stop", "event"))}
     return ep
 
 
