@@ -282,6 +282,51 @@ report(seconds=seconds, rows=rows, columns=columns)
 """
 
 
+#: The floors of the recipe design, each a query over the checked rows (``sql/20`` as the lab
+#: step leaves it) stored as a table, so that DuckDB cannot drop the work (it drops aggregates
+#: nobody reads): one reading of every row with every check made, and that reading gathered by
+#: time point with only the counts of rows and excluded rows (the grouping ``sql/21`` does,
+#: without its 25 value aggregates). ``bench_labs.py --floors`` and ``run_all.py`` time them.
+FLOOR_QUERIES: tuple[tuple[str, str], ...] = (
+    ("one checked reading",
+     "create or replace temp table bench_floor as select reason, count(*) as n "
+     "from dka_measurement_checked group by reason"),
+    ("reading + time points (two counts)",
+     "create or replace temp table bench_floor as select person_id, event_datetime, "
+     "count(*) as n, count(reason) as excluded from dka_measurement_checked "
+     "where person_id is not null and event_datetime is not null "
+     "group by person_id, event_datetime"),
+)
+
+_FLOORS = """
+import time
+import cohort._labs as labs
+from cohort.source import open_extract
+with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}, temp_directory={spill!r}) as extract:
+    extract.con.execute("set enable_progress_bar = false")
+    labs.prepare_lab_events(extract)
+    floors = {{}}
+    for label, sql in {queries!r}:
+        started = time.perf_counter()
+        extract.con.execute(sql)
+        floors[label] = time.perf_counter() - started
+    extract.con.execute("drop table if exists bench_floor")
+report(seconds=next(iter(floors.values())), floors=floors)
+"""
+
+
+def floors_run(extract: Path, *, threads: int | None, memory_limit: str | None, spill: Path | None = None,
+               timeout_seconds: float | None = None) -> Measured:
+    """Time the :data:`FLOOR_QUERIES` in a fresh child, after the lab step they read.
+
+    ``result["floors"]`` maps each floor to its seconds (the lab step before them is not
+    counted); ``seconds`` is the first. The peak RSS is the child's, lab step included.
+    """
+    code = child_code(_FLOORS.format(extract=str(extract), threads=threads, memory=memory_limit,
+                                     spill=str(spill) if spill else None, queries=FLOOR_QUERIES))
+    return run_python(code, label="floors", timeout_seconds=timeout_seconds)
+
+
 def episodes_run(extract: Path, definitions: Sequence[str], *, threads: int | None, memory_limit: str | None,
                  spill: Path | None = None, out: Path | None = None, save: Path | None = None,
                  label: str | None = None, timeout_seconds: float | None = None) -> Measured:

@@ -46,6 +46,10 @@ from collections.abc import Sequence
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
+if str(Path(__file__).resolve().parent) not in sys.path:
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _measure import FLOOR_QUERIES  # noqa: E402
 
 #: Measurement columns recipes 10 .. 22 read (sql/20).
 LAB_COLUMNS = (
@@ -130,22 +134,13 @@ with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}) as 
         down["31_lab_state.sql"] = time.perf_counter() - started
         result["downstream"] = down
     if {floors!r}:
-        # the floors of this design: one reading of the checked rows (sql/20, every row, nothing
-        # written), and the same reading gathered by time point with one count (the grouping
-        # sql/21 does, with only its counts of rows and of excluded rows, so every check is still
-        # made, not its 25 value aggregates); each stored as a table, as sql/21 is,
-        # so that DuckDB cannot drop the work (it drops aggregates nobody reads)
+        # the floors of this design (benchmarks/_measure.py, FLOOR_QUERIES)
         floors = {{}}
-        started = time.perf_counter()
-        con.execute("create or replace temp table bench_floor as select reason, count(*) as n "
-                    "from dka_measurement_checked group by reason")
-        floors["one checked reading"] = time.perf_counter() - started
-        started = time.perf_counter()
-        con.execute("create or replace temp table bench_floor as select person_id, event_datetime, "
-                    "count(*) as n, count(reason) as excluded from dka_measurement_checked where person_id is not null "
-                    "and event_datetime is not null group by person_id, event_datetime")
-        floors["reading + time points (two counts)"] = time.perf_counter() - started
-        con.execute("drop table bench_floor")
+        for label, sql in {floor_queries!r}:
+            started = time.perf_counter()
+            con.execute(sql)
+            floors[label] = time.perf_counter() - started
+        con.execute("drop table if exists bench_floor")
         result["floors"] = floors
 print(json.dumps(result, default=str))
 """
@@ -208,7 +203,7 @@ def _runs(runs: list[tuple[dict, float]], digits: int) -> str:
 def _labs(root: Path, args: argparse.Namespace, *, downstream: bool, check: bool) -> tuple[dict, float]:
     return _run(_LABS.format(root=str(root), extract=str(args.extract), threads=args.threads,
                              memory=args.memory_limit, downstream=downstream, check=check,
-                             floors=args.floors))
+                             floors=args.floors, floor_queries=FLOOR_QUERIES))
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -7,6 +7,10 @@ again with ``memory_limit=--spill-limit`` (1 GB: DuckDB must spill to ``--root/s
 
 - the generator (time and peak RSS; "reused" with the extract's size when it was there);
 - the bare scan of the measurement columns the episodes step reads (the floor);
+- the floors of the recipe design (``_measure.FLOOR_QUERIES``, after a lab step that is not
+  counted): one reading of the checked rows, and that reading gathered by time point with its
+  two counts; the episodes step reads the checked rows twice and aggregates 25 values per time
+  point on top of them;
 - the episodes step for each bundled definition alone, and for all four in one run;
 - the demo pipeline as ``dka-cohort demo`` runs it (episodes for all four definitions ->
   features -> analyse -> report, one DuckDB session), on the benchmark extract;
@@ -21,8 +25,8 @@ against the truth at 100k (``validity.py``) and PostgreSQL / Spark at ``--engine
     python benchmarks/run_all.py --persons 1000000 --root /tmp/e2/bench
     BENCH_ROOT=/tmp/e2/bench make bench
 
-Options ``--skip NAME`` (repeatable: peer, scaling, validity, engines, spill, demo, features,
-episodes) leave parts out, and ``--extract DIR`` measures an existing extract instead of
+Options ``--skip NAME`` (repeatable: floors, peer, scaling, validity, engines, spill, demo,
+features, episodes) leave parts out, and ``--extract DIR`` measures an existing extract instead of
 ``--root/p<persons>/extract`` (the generator row then says "reused").
 """
 
@@ -36,6 +40,7 @@ import sys
 import tempfile
 import time
 from collections.abc import Sequence
+from dataclasses import replace
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
@@ -49,6 +54,7 @@ from _measure import (  # noqa: E402
     Measured,
     child_code,
     episodes_run,
+    floors_run,
     folder_bytes,
     load_line,
     parquet_rows,
@@ -58,9 +64,9 @@ from _measure import (  # noqa: E402
 
 DEFINITIONS = ("consensus-2024", "ada-2009", "jbds-2023", "ispad-2022")
 #: Print order of the table's rows (measurements run in another order: the targets' rows first).
-ROW_ORDER = ("generator", "bare scan", "episodes consensus-2024", "episodes ada-2009", "episodes jbds-2023",
+ROW_ORDER = ("generator", "bare scan", "floor", "episodes consensus-2024", "episodes ada-2009", "episodes jbds-2023",
              "episodes ispad-2022", "episodes all four", "features", "demo pipeline", "pandas peer")
-PARTS = ("episodes", "demo", "features", "spill", "peer", "scaling", "validity", "engines")
+PARTS = ("floors", "episodes", "demo", "features", "spill", "peer", "scaling", "validity", "engines")
 
 _DEMO = """
 import time
@@ -245,6 +251,15 @@ def _measure_all(args, extract, settings, table, everything, spill, root, state)
             table.scan[name] = scan.seconds
     columns = next((scan.result.get("columns") for scan in scans if scan.ok), None)
     table.add(f"bare scan ({len(columns) if columns else '?'} measurement columns)", scans)
+
+    if "floors" not in args.skip:
+        runs = cells("floors", lambda memory: floors_run(extract, threads=args.threads, memory_limit=memory,
+                                                         spill=spill, timeout_seconds=args.timeout))
+        labels = next((list(run.result.get("floors", {})) for run in runs if run.ok), [])
+        for label in labels:  # one child gives every floor; the peak RSS is that child's
+            table.add(f"floor: {label}", [
+                replace(run, result={**run.result, "seconds": run.result["floors"][label]}) if run.ok else run
+                for run in runs])
 
     episodes: dict[str, list[Measured]] = state["episodes"]
     written: dict[str | None, Path] = {}
