@@ -51,12 +51,17 @@ from cohort.report._tables import attrition_table, is_small, km_truncate, median
 
 __all__ = ["CAUTIONS", "KNOWN_FILES", "ReportSummary", "write_report"]
 
-#: The cautions of DESIGN.md, shown at the top of every report.
+#: The cautions of DESIGN.md, and one of the toolkit's own, shown at the top of every report.
 CAUTIONS: tuple[str, ...] = (
     "For research, audit and teaching. Not for decisions about an individual patient.",
     "Definitions follow published guidelines; local protocols and licensed clinicians govern care.",
     "Check a cohort against chart review before publishing from it.",
     "Outputs that leave a secure environment must pass the disclosure check.",
+    # the toolkit's own caution (README, Cautions): measured on the synthetic extract 2026-12-04
+    ("Definitions that accept known diabetes in place of hyperglycaemia (consensus-2024, jbds-2023) "
+     "count any diabetes or ketoacidosis code on or before the time point, the episode's own code "
+     "included: a ketoacidosis of another cause coded as diabetic ketoacidosis is then found as DKA. "
+     "Review episodes with known diabetes and a glucose below 11.1 mmol/L at onset."),
 )
 
 #: File name -> subfolders searched (besides the folder itself).
