@@ -217,3 +217,30 @@ def test_threshold_one_turns_suppression_off(tmp_path):
     summary = write_report(results, tmp_path / "open.html", threshold=1)
     quality = pl.read_csv(next(summary.tables_dir.glob("*_data_quality.csv")), infer_schema_length=0)
     assert quality["rows"].to_list() == ["310", "44", "3", "0"]
+
+
+def test_episodes_resting_on_known_diabetes_are_counted_for_review(tmp_path):
+    # the README's known-diabetes caution: episodes with known diabetes and no onset glucose of
+    # 11.1 mmol/L (200 mg/dL, Umpierrez et al., Diabetes Care 2024) or more are counted per
+    # definition, small counts suppressed like every other count
+    results = _results(tmp_path)
+    episodes = pl.read_parquet(results / "episodes" / "episodes.parquet")
+    n = episodes.height
+    known = [index % 8 == 0 for index in range(n)]  # 15 of 120
+    glucose = [None if index % 16 == 0 else (9.0 if index % 8 == 0 else 25.0) for index in range(n)]
+    glucose[1] = 11.1  # at the threshold: hyperglycaemic, not counted (and not known diabetes)
+    glucose[8] = 11.1  # known diabetes, glucose at the threshold: not counted
+    episodes.with_columns(known_diabetes=pl.Series(known), glucose_mmol_l=pl.Series(glucose)).write_parquet(
+        results / "episodes" / "episodes.parquet")
+    summary = write_report(results, tmp_path / "out" / "report.html")
+    shown = pl.read_csv(next(summary.tables_dir.glob("*episodes_per_definition*.csv")), infer_schema_length=0)
+    assert shown["known_diabetes_glucose_below_11_1"].to_list() == ["14"]
+    assert check_disclosure(summary.tables_dir) == []
+
+    # four such episodes: shown as "<10"
+    few = [index in (0, 8, 16, 24) for index in range(n)]
+    episodes.with_columns(known_diabetes=pl.Series(few), glucose_mmol_l=pl.lit(8.0)).write_parquet(
+        results / "episodes" / "episodes.parquet")
+    summary = write_report(results, tmp_path / "out2" / "report.html")
+    shown = pl.read_csv(next(summary.tables_dir.glob("*episodes_per_definition*.csv")), infer_schema_length=0)
+    assert shown["known_diabetes_glucose_below_11_1"].to_list() == ["<10"]

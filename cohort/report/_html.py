@@ -64,6 +64,11 @@ CAUTIONS: tuple[str, ...] = (
      "Review episodes with known diabetes and a glucose below 11.1 mmol/L at onset."),
 )
 
+#: Onset glucose below which an episode with known diabetes is counted for review (11.1 mmol/L =
+#: 200 mg/dL, the hyperglycaemia threshold of Umpierrez et al., Diabetes Care 2024), and its column.
+KNOWN_DIABETES_GLUCOSE_MMOL_L = 11.1
+KNOWN_DIABETES_COLUMN = "known_diabetes_glucose_below_11_1"
+
 #: File name -> subfolders searched (besides the folder itself).
 KNOWN_FILES: dict[str, tuple[str, ...]] = {
     "episodes.parquet": ("episodes",),
@@ -353,16 +358,27 @@ def _definitions_section(build: _Builder, results_dir: Path) -> _Section | None:
     if episodes is None:
         build.skip("Definitions side by side", "no episodes.parquet in the results")
         return None
-    counts = (episodes.group_by("definition").agg(pl.len().cast(pl.Int64).alias("episodes"),
-                                                   pl.col("person_id").n_unique().cast(pl.Int64).alias("persons"))
-              .sort("definition"))
-    shown = suppress_counts(counts, ["episodes", "persons"], threshold=build.threshold, group_by=[])
+    aggregates = [pl.len().cast(pl.Int64).alias("episodes"),
+                  pl.col("person_id").n_unique().cast(pl.Int64).alias("persons")]
+    if {"known_diabetes", "glucose_mmol_l"} <= set(episodes.columns):
+        # the episodes the known-diabetes caution asks to review: diagnosed with no onset glucose
+        # of 11.1 mmol/L (200 mg/dL) or more, so on the known-diabetes criterion alone where a
+        # definition offers it (consensus-2024, jbds-2023); a part of `episodes` whose complement
+        # is not shown, so primary suppression suffices
+        low = pl.col("glucose_mmol_l").is_null() | (pl.col("glucose_mmol_l") < KNOWN_DIABETES_GLUCOSE_MMOL_L)
+        aggregates.append((pl.col("known_diabetes").fill_null(False) & low).sum().cast(pl.Int64)
+                          .alias(KNOWN_DIABETES_COLUMN))
+    counts = episodes.group_by("definition").agg(aggregates).sort("definition")
+    count_columns = [name for name in ("episodes", "persons", KNOWN_DIABETES_COLUMN) if name in counts.columns]
+    shown = suppress_counts(counts, count_columns, threshold=build.threshold, group_by=[])
     values = [int(v) if v.isdigit() else None for v in shown["episodes"].to_list()]
     figure = charts.bar_figure(shown["definition"].to_list(), values, title="Episodes found by each definition",
                                x_title="Definition", y_title="Episodes (count)")
     section.blocks.append(build.chart(figure, "episodes_per_definition",
                                       "Episodes per definition (a person may have several episodes).", shown,
-                                      "Episodes and persons per definition"))
+                                      "Episodes and persons per definition, and the episodes with known "
+                                      "diabetes and no onset glucose of 11.1 mmol/L or more (review them: "
+                                      "see the cautions)"))
     agreement = _read(results_dir, "agreement.csv")
     if agreement is None:
         build.skip("Agreement between definitions", "no agreement.csv in the results")
