@@ -298,19 +298,30 @@ FLOOR_QUERIES: tuple[tuple[str, str], ...] = (
      "group by person_id, event_datetime"),
 )
 
+def time_floors(con: Any) -> dict[str, float]:
+    """Run the :data:`FLOOR_QUERIES` on a session the lab step has prepared; seconds of each.
+
+    The scratch table they write is dropped after.
+    """
+    floors = {}
+    for label, sql in FLOOR_QUERIES:
+        started = time.perf_counter()
+        con.execute(sql)
+        floors[label] = time.perf_counter() - started
+    con.execute("drop table if exists bench_floor")
+    return floors
+
+
 _FLOORS = """
-import time
+import sys
+sys.path.insert(0, {here!r})
 import cohort._labs as labs
+from _measure import time_floors
 from cohort.source import open_extract
 with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}, temp_directory={spill!r}) as extract:
     extract.con.execute("set enable_progress_bar = false")
     labs.prepare_lab_events(extract)
-    floors = {{}}
-    for label, sql in {queries!r}:
-        started = time.perf_counter()
-        extract.con.execute(sql)
-        floors[label] = time.perf_counter() - started
-    extract.con.execute("drop table if exists bench_floor")
+    floors = time_floors(extract.con)
 report(seconds=next(iter(floors.values())), floors=floors)
 """
 
@@ -323,7 +334,7 @@ def floors_run(extract: Path, *, threads: int | None, memory_limit: str | None, 
     counted); ``seconds`` is the first. The peak RSS is the child's, lab step included.
     """
     code = child_code(_FLOORS.format(extract=str(extract), threads=threads, memory=memory_limit,
-                                     spill=str(spill) if spill else None, queries=FLOOR_QUERIES))
+                                     spill=str(spill) if spill else None, here=str(Path(__file__).resolve().parent)))
     return run_python(code, label="floors", timeout_seconds=timeout_seconds)
 
 

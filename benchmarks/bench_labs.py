@@ -46,10 +46,6 @@ from collections.abc import Sequence
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-if str(Path(__file__).resolve().parent) not in sys.path:
-    sys.path.insert(0, str(Path(__file__).resolve().parent))
-
-from _measure import FLOOR_QUERIES  # noqa: E402
 
 #: Measurement columns recipes 10 .. 22 read (sql/20).
 LAB_COLUMNS = (
@@ -135,13 +131,9 @@ with open_extract({extract!r}, threads={threads!r}, memory_limit={memory!r}) as 
         result["downstream"] = down
     if {floors!r}:
         # the floors of this design (benchmarks/_measure.py, FLOOR_QUERIES)
-        floors = {{}}
-        for label, sql in {floor_queries!r}:
-            started = time.perf_counter()
-            con.execute(sql)
-            floors[label] = time.perf_counter() - started
-        con.execute("drop table if exists bench_floor")
-        result["floors"] = floors
+        sys.path.insert(0, {here!r})
+        from _measure import time_floors
+        result["floors"] = time_floors(con)
 print(json.dumps(result, default=str))
 """
 
@@ -203,7 +195,7 @@ def _runs(runs: list[tuple[dict, float]], digits: int) -> str:
 def _labs(root: Path, args: argparse.Namespace, *, downstream: bool, check: bool) -> tuple[dict, float]:
     return _run(_LABS.format(root=str(root), extract=str(args.extract), threads=args.threads,
                              memory=args.memory_limit, downstream=downstream, check=check,
-                             floors=args.floors, floor_queries=FLOOR_QUERIES))
+                             floors=args.floors, here=str(Path(__file__).resolve().parent)))
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -50,7 +50,10 @@ def _hours(expr: pl.Expr) -> pl.Expr:
 
 def _best_matches(found: pl.DataFrame, dka: pl.DataFrame, tolerance_hours: float) -> pl.DataFrame:
     """Each found episode's closest true DKA episode of the same person within the tolerance
-    (episode_id, truth_id, onset_error, resolution_error in hours); unmatched ones are absent."""
+    (episode_id, truth_id, onset_error, resolution_error in hours); unmatched ones are absent.
+    A finder without resolution times (the code finder) gets null resolution errors."""
+    if "resolution_datetime" not in found.columns:
+        found = found.with_columns(pl.lit(None, dtype=pl.Datetime("us")).alias("resolution_datetime"))
     pairs = (
         found.select("episode_id", "person_id", "onset_datetime", "resolution_datetime")
         .join(dka.select("truth_id", "person_id", "onset_datetime", "resolution_datetime"),
@@ -103,8 +106,6 @@ def unmatched_kinds(found: pl.DataFrame, truth: pl.DataFrame, *,
     >>> unmatched_kinds(found, truth).rows()
     [('lactic_acidosis', 1)]
     """
-    if "resolution_datetime" not in found.columns:
-        found = found.with_columns(pl.lit(None, dtype=pl.Datetime("us")).alias("resolution_datetime"))
     dka = truth.filter(pl.col("kind") == "dka")
     matched = _best_matches(found, dka, tolerance_hours).get_column("episode_id")
     misses = found.filter(~pl.col("episode_id").is_in(matched.implode())).select(
@@ -151,8 +152,6 @@ def score(found: pl.DataFrame, truth: pl.DataFrame, *, min_age: float | None, ma
         eligible = eligible.filter(pl.col("age_years") >= min_age)
     if max_age is not None:
         eligible = eligible.filter(pl.col("age_years") < max_age)
-    if "resolution_datetime" not in found.columns:
-        found = found.with_columns(pl.lit(None, dtype=pl.Datetime("us")).alias("resolution_datetime"))
     best = _best_matches(found, dka, tolerance_hours)
     matched_true = best.filter(pl.col("truth_id").is_in(eligible.get_column("truth_id").implode()))
     true_n = eligible.height
